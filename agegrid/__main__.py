@@ -1,0 +1,3 @@
+from agegrid.cli import main
+
+raise SystemExit(main())
