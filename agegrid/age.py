@@ -1,0 +1,416 @@
+"""The age engine: age between bracketing isochron traces within each compartment.
+
+For each compartment a local frame is fitted on the sphere: ``u`` runs along the great circle that
+best fits the compartment's ridge (or its longest isochron), ``v`` is the angular distance across it.
+Every dated boundary (ridge, isochron line, the picks of one chron end) becomes a *trace* v(u) on each
+flank, resampled on a regular ``u`` axis: piecewise linear through its control, and continued along
+strike to the compartment's edge parallel to the next younger trace of its flank (the ridge is
+continued along its own end trend). Traces implying an implausible half-rate against their younger
+neighbour, or lying on the wrong side of it, are dropped.
+
+A cell at (u, v) takes the two traces that bracket its v in its column, and the age
+``t_a + f (t_b - t_a)`` with ``f`` the fraction of the great-circle distance between them (the
+distance-ratio rule for gridding between dated isochrons). Beyond the outermost trace the last pair's
+rate is continued up to ``max_extrapolation_myr``; beyond a ridge with no conjugate control the
+conjugate flank is mirrored. The same pair gives the half-rate (their perpendicular great-circle
+separation over their age difference) and the spreading azimuth (normal to the traces, toward older).
+
+Uncertainty (1 sigma, Myr)::
+
+    sigma_k^2   = sigma_pick_k^2 + (g D_k)^2            trace position: pick sigma, grown with the
+                                                        along-strike distance D_k to its nearest control
+    sigma_age^2 = ((1-f)^2 sigma_a^2 + f^2 sigma_b^2) / r^2  +  (p age)^2  +  (e x)^2
+
+with r the local half-rate, p the timescale's relative uncertainty (``timescale_sigma_percent``), x
+the extrapolated span (Myr), g = :data:`GROWTH_PER_KM` and e = :data:`EXTRAPOLATION_FRACTION` (agegrid's
+stated choices, not published values).
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+
+import dask.array as da
+import numpy as np
+
+from agegrid import sphere
+
+log = logging.getLogger("agegrid")
+
+#: Growth of a trace's position uncertainty with along-strike distance from its control (km per km).
+GROWTH_PER_KM = 0.02
+#: Extrapolated age span counted as 1-sigma uncertainty (fraction).
+EXTRAPOLATION_FRACTION = 0.25
+
+FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FAR = 1, 2, 3, 4, 5
+FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outside_domain "
+                 "no_control_in_compartment beyond_extrapolation_limit")
+
+#: Layers the kernel returns, in order.
+LAYERS = ("age", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "age_fraction",
+          "half_rate", "spreading_azimuth", "compartment")
+
+
+@dataclass
+class Settings:
+    """Engine settings taken from ``[age]`` and ``[picks]``."""
+
+    max_extrapolation_myr: float = 5.0
+    timescale_sigma_percent: float = 1.0
+    min_half_rate: float = 2.0
+    max_half_rate: float = 100.0
+
+
+@dataclass
+class Frame:
+    """A compartment's frame: centre ``c``, strike direction ``e_u``, pole ``n`` of the strike circle."""
+
+    c: np.ndarray
+    e_u: np.ndarray
+    n: np.ndarray
+
+    @classmethod
+    def fit(cls, xyz: np.ndarray) -> "Frame | None":
+        """The great circle best fitting points (smallest eigenvector of their scatter), or None."""
+        if len(xyz) < 2 or sphere.angle(xyz.min(0) * 0 + xyz[0], xyz).max() < 1e-6:
+            return None
+        _, vectors = np.linalg.eigh(xyz.T @ xyz)
+        n = vectors[:, 0]
+        c = xyz.mean(0)
+        c = c - (c @ n) * n
+        c /= np.linalg.norm(c)
+        return cls(c, np.cross(n, c), n)
+
+    def uv(self, xyz: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Along-strike angle u and across-strike angle v (radians) of unit vectors."""
+        u = np.arctan2(xyz @ self.e_u, xyz @ self.c)
+        v = np.arcsin(np.clip(xyz @ self.n, -1.0, 1.0))
+        return u, v
+
+
+@dataclass
+class CompartmentModel:
+    """The traces of one compartment on a regular ``u`` axis, ordered so ``V`` grows along axis 0."""
+
+    label: int
+    frame: Frame
+    u0: float
+    du: float
+    V: np.ndarray
+    D: np.ndarray
+    sigma: np.ndarray
+    ages: np.ndarray
+    bounds: np.ndarray
+
+    @property
+    def ncol(self) -> int:
+        return self.V.shape[1]
+
+
+@dataclass
+class AgeModel:
+    """Everything the kernel needs: one model per compartment with control, and the settings."""
+
+    compartments: dict[int, CompartmentModel]
+    settings: Settings
+    labels: list[str] = field(default_factory=list)
+    ages: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    dropped: list[dict] = field(default_factory=list)
+    outliers: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+
+
+# --- building the traces ---------------------------------------------------------------------------
+def _binned(col: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean position per integer column of the control of one trace, sorted along strike."""
+    key = np.rint(col).astype(np.int64)
+    uniq, inverse = np.unique(key, return_inverse=True)
+    count = np.bincount(inverse)
+    return np.bincount(inverse, col) / count, np.bincount(inverse, v) / count
+
+
+def _end_fit(xp: np.ndarray, vp: np.ndarray, end: int) -> tuple[float, float]:
+    """Slope and anchor of a line through the control nearest one end of a trace."""
+    span = max(3.0, 0.1 * (xp[-1] - xp[0]))
+    sel = (xp >= xp[-1] - span) if end > 0 else (xp <= xp[0] + span)
+    if sel.sum() < 2:
+        return 0.0, float(vp[-1] if end > 0 else vp[0])
+    slope = np.polyfit(xp[sel], vp[sel], 1)[0]
+    return float(slope), float(vp[-1] if end > 0 else vp[0])
+
+
+def _trace(col: np.ndarray, v: np.ndarray, ncol: int, previous: np.ndarray | None, km_per_col: float):
+    """Resample one trace on the column axis; returns (V, D) with D the along-strike km to control."""
+    xp, vp = _binned(col, v)
+    cols = np.arange(ncol, dtype=float)
+    values = np.interp(cols, xp, vp)
+    before, after = cols < xp[0], cols > xp[-1]
+    if previous is not None:
+        values[before] = previous[before] + (vp[0] - np.interp(xp[0], cols, previous))
+        values[after] = previous[after] + (vp[-1] - np.interp(xp[-1], cols, previous))
+    else:
+        slope, anchor = _end_fit(xp, vp, -1)
+        values[before] = anchor + slope * (cols[before] - xp[0])
+        slope, anchor = _end_fit(xp, vp, 1)
+        values[after] = anchor + slope * (cols[after] - xp[-1])
+    pos = np.clip(np.searchsorted(xp, cols), 1, max(1, len(xp) - 1))
+    near = np.minimum(np.abs(cols - xp[pos - 1]), np.abs(cols - xp[np.minimum(pos, len(xp) - 1)]))
+    return values, near * km_per_col
+
+
+def _consistent(col: np.ndarray, offset: np.ndarray, sigma_km: np.ndarray) -> np.ndarray:
+    """Which control points of one trace agree with a robust line through the rest.
+
+    ``offset`` is each point's across-strike position relative to the next younger trace (radians);
+    along one isochron it varies slowly, so a Theil-Sen line through it, with a tolerance of three
+    pick sigmas or four robust standard deviations, separates points that belong to another
+    isochron (a pick moved across a fracture zone, a mis-identified anomaly).
+    """
+    keep = np.ones(len(col), bool)
+    if len(col) < 3 or np.ptp(col) == 0:
+        return keep
+    from scipy.stats import theilslopes
+
+    slope, intercept, _, _ = theilslopes(offset, col)
+    resid = offset - (intercept + slope * col)
+    mad = 1.4826 * np.median(np.abs(resid - np.median(resid)))
+    tol = max(3 * np.median(sigma_km) / sphere.EARTH_RADIUS_KM, 4 * mad)
+    return np.abs(resid) <= tol
+
+
+def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad, settings, dropped, outliers):
+    """Fit the frame and build the ordered traces of one compartment (None if it has too little)."""
+    ridge = kind == 0
+    frame = Frame.fit(xyz[ridge]) if ridge.sum() >= 2 else None
+    if frame is None:
+        groups = [np.flatnonzero(bound == b) for b in np.unique(bound)]
+        frame = Frame.fit(xyz[max(groups, key=len)])
+    if frame is None:
+        return None
+    u, v = frame.uv(xyz)
+    ext_u = [u.min(), u.max()]
+    if extent is not None:
+        eu, _ = frame.uv(extent)
+        ext_u = [min(ext_u[0], eu.min()), max(ext_u[1], eu.max())]
+    du = spacing_rad
+    u0 = ext_u[0] - 2 * du
+    ncol = int(np.ceil((ext_u[1] + 2 * du - u0) / du)) + 1
+    if ncol > 200_000:
+        du = (ext_u[1] - ext_u[0] + 4 * spacing_rad) / 200_000
+        ncol = 200_001
+    col = (u - u0) / du
+    km_per_col = du * sphere.EARTH_RADIUS_KM
+    traces = []  # (flank, age, bound, V, D, sigma)
+    if ridge.any():
+        keep = _consistent(col[ridge], v[ridge], sigma[ridge])
+        if not keep.all():
+            outliers.extend(int(i) for i in np.flatnonzero(ridge)[~keep])
+            ridge = ridge.copy()
+            ridge[np.flatnonzero(ridge)[~keep]] = False
+        rv, rd = _trace(col[ridge], v[ridge], ncol, None, km_per_col)
+        ridge_trace = (0, 0.0, 0, rv, rd, float(np.median(sigma[ridge])))
+        cols = np.arange(ncol)
+        side = np.sign(v - np.interp(col, cols, rv))
+        flanks = (-1, 1)
+    else:
+        ridge_trace, side, flanks = None, np.ones(len(v)), (1,)
+    for flank in flanks:
+        previous = ridge_trace
+        on = (side == flank) & ~ridge
+        for b in sorted(np.unique(bound[on]), key=lambda b: age[on][bound[on] == b][0]):
+            sel = on & (bound == b)
+            t = float(age[sel][0])
+            base = None if previous is None else np.interp(col[sel], np.arange(ncol), previous[3])
+            keep = _consistent(col[sel], v[sel] - (0 if base is None else base), sigma[sel])
+            if not keep.all():
+                idx = np.flatnonzero(sel)[~keep]
+                outliers.extend(int(i) for i in idx)
+                sel[idx] = False
+            V, D = _trace(col[sel], v[sel], ncol, None if previous is None else previous[3], km_per_col)
+            if previous is not None:
+                xp = np.rint(col[sel]).astype(int).clip(0, ncol - 1)
+                gap = np.median((V[xp] - previous[3][xp]) * flank)
+                rate = gap * sphere.EARTH_RADIUS_KM / max(t - previous[1], 1e-9)
+                if not (settings.min_half_rate <= rate <= settings.max_half_rate):
+                    dropped.append({"compartment": int(label), "boundary": int(b), "age_ma": t, "flank": flank,
+                                    "points": int(sel.sum()), "implied_half_rate_mm_yr": float(rate)})
+                    continue
+            traces.append((flank, t, int(b), V, D, float(np.median(sigma[sel]))))
+            previous = traces[-1]
+    if ridge_trace is None:
+        if len(traces) >= 2 and np.median(traces[-1][3]) < np.median(traces[0][3]):
+            traces = [(-1,) + tr[1:] for tr in traces]
+        ordered = traces if not traces or traces[0][0] > 0 else traces[::-1]
+    else:
+        minus = [tr for tr in traces if tr[0] < 0][::-1]
+        plus = [tr for tr in traces if tr[0] > 0]
+        ordered = minus + [ridge_trace] + plus
+    if len(ordered) < 2:
+        return None
+    V = np.array([tr[3] for tr in ordered])
+    anchor = next((i for i, tr in enumerate(ordered) if tr[0] == 0), int(np.argmin([tr[1] for tr in ordered])))
+    for k in range(anchor + 1, len(V)):
+        V[k] = np.maximum(V[k], V[k - 1])
+    for k in range(anchor - 1, -1, -1):
+        V[k] = np.minimum(V[k], V[k + 1])
+    return CompartmentModel(
+        label=int(label), frame=frame, u0=float(u0), du=float(du), V=V, D=np.array([tr[4] for tr in ordered]),
+        sigma=np.array([tr[5] for tr in ordered]), ages=np.array([tr[1] for tr in ordered]),
+        bounds=np.array([tr[2] for tr in ordered], dtype=np.int32))
+
+
+def _extent_samples(spec, compartments, target: int = 400_000) -> dict[int, np.ndarray]:
+    """Unit vectors of a decimated sample of each compartment's cells, to size its ``u`` axis."""
+    ny, nx = spec.shape
+    step = max(1, int(np.sqrt(ny * nx / target)))
+    rows = np.unique(np.r_[np.arange(0, ny, step), ny - 1])
+    cols = np.unique(np.r_[np.arange(0, nx, step), nx - 1])
+    labels = compartments.labels[np.ix_(rows, cols)]
+    xx, yy = np.meshgrid(spec.x[cols], spec.y[rows])
+    lon, lat = (xx, yy) if spec.geographic else spec.to_lonlat.transform(xx, yy)
+    lon, lat = np.asarray(lon), np.asarray(lat)
+    xyz = sphere.to_xyz(lon, lat)
+    return {int(k): xyz[labels == k] for k in np.unique(labels) if k > 0}
+
+
+def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel:
+    """Fit the per-compartment trace models from the dated control.
+
+    Parameters
+    ----------
+    spec : GridSpec
+    compartments : Compartments
+    control : ControlSet
+    settings : Settings
+    """
+    where = compartments.assign(spec, control.lon, control.lat)
+    xyz = control.xyz
+    extents = _extent_samples(spec, compartments)
+    spacing_rad = np.radians(spec.spacing) if spec.geographic else spec.spacing / (sphere.EARTH_RADIUS_KM * 1e3)
+    models, dropped, outliers = {}, [], []
+    for label in range(1, compartments.count + 1):
+        sel = np.flatnonzero(where == label)
+        if not len(sel):
+            continue
+        local = []
+        model = _compartment_model(label, xyz[sel], control.age[sel], control.boundary[sel], control.kind[sel],
+                                   control.sigma_km[sel], extents.get(label), spacing_rad, settings, dropped, local)
+        outliers.extend(int(sel[i]) for i in local)
+        if model is not None:
+            models[label] = model
+    if outliers:
+        log.info("%d control points disagree with their isochron trace and were left out", len(outliers))
+    for item in dropped:
+        log.info("compartment %d: dropped trace of %.3f Ma on flank %+d (%d points, implied half-rate %.1f mm/yr)",
+                 item["compartment"], item["age_ma"], item["flank"], item["points"], item["implied_half_rate_mm_yr"])
+    return AgeModel(models, settings, list(control.boundaries.labels), np.asarray(control.boundaries.ages), dropped,
+                    np.asarray(sorted(outliers), dtype=np.int64))
+
+
+# --- the kernel --------------------------------------------------------------------------------------
+def _at(V: np.ndarray, k: np.ndarray, j: np.ndarray, w: np.ndarray) -> np.ndarray:
+    return V[k, j] * (1 - w) + V[k, j + 1] * w
+
+
+def evaluate_compartment(m: CompartmentModel, xyz: np.ndarray, lon: np.ndarray, lat: np.ndarray,
+                         settings: Settings) -> dict[str, np.ndarray]:
+    """Age, uncertainty, brackets, rate and azimuth at unit vectors of one compartment."""
+    u, v = m.frame.uv(xyz)
+    K = m.V.shape[0]
+    colf = np.clip((u - m.u0) / m.du, 0, m.ncol - 1)
+    j = np.minimum(colf.astype(np.int64), m.ncol - 2)
+    w = colf - j
+    lo, hi = np.zeros(len(v), np.int64), np.full(len(v), K, np.int64)
+    for _ in range(int(np.ceil(np.log2(K + 1))) + 1):
+        active = lo < hi
+        mid = np.minimum((lo + hi) // 2, K - 1)
+        below = _at(m.V, mid, j, w) <= v
+        lo = np.where(active & below, mid + 1, lo)
+        hi = np.where(active & ~below, mid, hi)
+    a = np.clip(lo - 1, 0, K - 2)
+    b = a + 1
+    va, vb = _at(m.V, a, j, w), _at(m.V, b, j, w)
+    gap = vb - va
+    with np.errstate(invalid="ignore", divide="ignore"):
+        f = np.where(gap > 0, (v - va) / np.where(gap > 0, gap, 1), 0.0)
+    ta, tb = m.ages[a], m.ages[b]
+    age = ta + f * (tb - ta)
+    mirror = age < 0
+    # brackets as (younger, older) with the fraction measured from the younger
+    young_first = ta <= tb
+    fy = np.where(young_first, f, 1 - f)
+    young = np.where(young_first, m.bounds[a], m.bounds[b])
+    old = np.where(young_first, m.bounds[b], m.bounds[a])
+    fy = np.where(mirror, -fy, fy)  # the mirrored age is -(t_y + f_y (t_o - t_y)) with t_y = 0
+    age = np.abs(age)
+    extrapolated = (f < 0) | (f > 1) | mirror
+    t_end = np.where(f < 0, ta, np.where(f > 1, tb, age))
+    span = np.where(extrapolated, np.abs(age - t_end), 0.0)
+    too_far = span > settings.max_extrapolation_myr
+    # rate and direction from the bracketing pair
+    fc = np.clip(f, 0, 1)
+    slope = ((1 - fc) * (m.V[a, j + 1] - m.V[a, j]) + fc * (m.V[b, j + 1] - m.V[b, j])) / m.du
+    cos_v = np.cos(v)
+    tilt = slope / cos_v
+    dt = np.abs(tb - ta)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rate = np.where((gap > 0) & (dt > 0), gap * sphere.EARTH_RADIUS_KM / np.sqrt(1 + tilt**2) / dt, np.nan)
+    n = m.frame.n
+    e_v = n[None, :] - (xyz @ n)[:, None] * xyz
+    e_v /= np.linalg.norm(e_v, axis=1, keepdims=True)
+    e_u = np.cross(n[None, :], xyz)
+    e_u /= np.linalg.norm(e_u, axis=1, keepdims=True)
+    normal = (e_v - e_u * tilt[:, None]) * np.where(tb > ta, 1.0, -1.0)[:, None]
+    normal = np.where(mirror[:, None], -normal, normal)
+    lam, phi = np.radians(lon), np.radians(lat)
+    east_c = -np.sin(lam) * normal[:, 0] + np.cos(lam) * normal[:, 1]
+    north_c = (-np.sin(phi) * np.cos(lam) * normal[:, 0] - np.sin(phi) * np.sin(lam) * normal[:, 1]
+               + np.cos(phi) * normal[:, 2])
+    azimuth = np.degrees(np.arctan2(east_c, north_c)) % 360
+    sig_a = np.hypot(m.sigma[a], GROWTH_PER_KM * _at(m.D, a, j, w))
+    sig_b = np.hypot(m.sigma[b], GROWTH_PER_KM * _at(m.D, b, j, w))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pos = np.hypot((1 - fc) * sig_a, fc * sig_b) / rate
+    sigma = np.sqrt(pos**2 + (settings.timescale_sigma_percent / 100 * age) ** 2
+                    + (EXTRAPOLATION_FRACTION * span) ** 2)
+    flag = np.where(too_far, FLAG_TOO_FAR, np.where(extrapolated, FLAG_EXTRAPOLATED, FLAG_INTERPOLATED))
+    nan = too_far
+    return {"age": np.where(nan, np.nan, age), "age_uncertainty": np.where(nan, np.nan, sigma), "age_flag": flag,
+            "age_bracket_young": np.where(nan, -1, young), "age_bracket_old": np.where(nan, -1, old),
+            "age_fraction": np.where(nan, np.nan, fy), "half_rate": np.where(nan, np.nan, rate),
+            "spreading_azimuth": np.where(nan, np.nan, azimuth)}
+
+
+def evaluate_block(model: AgeModel, labels: np.ndarray, domain: np.ndarray, lon: np.ndarray,
+                   lat: np.ndarray) -> np.ndarray:
+    """All :data:`LAYERS` for one block of cells, stacked on a leading axis (float32)."""
+    out = np.full((len(LAYERS),) + labels.shape, np.nan, dtype=np.float32)
+    out[LAYERS.index("age_flag")] = np.where(domain, FLAG_NO_CONTROL, FLAG_OUTSIDE)
+    out[LAYERS.index("age_bracket_young")] = -1
+    out[LAYERS.index("age_bracket_old")] = -1
+    out[LAYERS.index("compartment")] = labels
+    for label in np.unique(labels):
+        m = model.compartments.get(int(label))
+        if m is None:
+            continue
+        sel = labels == label
+        lo, la = lon[sel], lat[sel]
+        result = evaluate_compartment(m, sphere.to_xyz(lo, la), lo, la, model.settings)
+        for name, values in result.items():
+            out[LAYERS.index(name)][sel] = values
+    return out
+
+
+def age_layers(spec, compartments, model: AgeModel) -> dict[str, da.Array]:
+    """The age-engine layers as lazy dask arrays, chunked like the grid."""
+    chunks = spec.chunks
+    labels = da.from_array(compartments.labels, chunks=chunks)
+    domain = da.from_array(compartments.domain, chunks=chunks)
+
+    def block(lab, dom, block_info=None):
+        (r0, r1), (c0, c1) = block_info[0]["array-location"]
+        lon, lat = spec.lonlat(slice(r0, r1), slice(c0, c1))
+        return evaluate_block(model, lab, dom, lon, lat)
+
+    stacked = da.map_blocks(block, labels, domain, dtype=np.float32, new_axis=0,
+                            chunks=((len(LAYERS),),) + labels.chunks)
+    return {name: stacked[i] for i, name in enumerate(LAYERS)}

@@ -1,0 +1,57 @@
+"""Atomic replacement of outputs: write beside the target, then rename, only on success."""
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+#: Prefix of the temporary files and folders a build stages its outputs in.
+STAGING_PREFIX = ".agegrid-tmp-"
+
+
+def staging_path(target: Path) -> Path:
+    """A fresh temporary name in the target's folder (same file system, so rename is atomic)."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, name = tempfile.mkstemp(prefix=STAGING_PREFIX, suffix=target.suffix, dir=target.parent)
+    os.close(fd)
+    os.unlink(name)
+    return Path(name)
+
+
+def replace(staged: Path, target: Path) -> None:
+    """Move a staged file or folder over the target in one rename (folders: swap, then remove old)."""
+    if staged.is_dir():
+        old = None
+        if target.exists():
+            old = staging_path(target)
+            os.replace(target, old)
+        os.replace(staged, target)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    else:
+        with open(staged, "rb") as fh:
+            os.fsync(fh.fileno())
+        os.replace(staged, target)
+
+
+def atomic_write_text(target: Path, text: str) -> None:
+    """Write a text file atomically."""
+    staged = staging_path(Path(target))
+    try:
+        staged.write_text(text, encoding="utf-8")
+        replace(staged, Path(target))
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            staged.unlink()
+
+
+def clean_stale(directory: Path) -> list[Path]:
+    """Remove temporary files a killed build left behind; returns what was removed."""
+    removed = []
+    if directory.is_dir():
+        for path in directory.glob(STAGING_PREFIX + "*"):
+            shutil.rmtree(path, ignore_errors=True) if path.is_dir() else path.unlink(missing_ok=True)
+            removed.append(path)
+    return removed
