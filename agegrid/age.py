@@ -177,6 +177,15 @@ def _consistent(col: np.ndarray, offset: np.ndarray, sigma_km: np.ndarray) -> np
     return np.abs(resid) <= tol
 
 
+def _plausible(offset: np.ndarray, sigma_km: np.ndarray, dt: float, settings: Settings) -> np.ndarray:
+    """Which points lie beyond the younger trace at a plausible half-rate, allowing 3 sigma of noise."""
+    slack = 3 * sigma_km / sphere.EARTH_RADIUS_KM
+    dt = max(dt, 1e-9)
+    fast = (offset - slack) * sphere.EARTH_RADIUS_KM / dt > settings.max_half_rate
+    slow = (offset + slack) * sphere.EARTH_RADIUS_KM / dt < settings.min_half_rate
+    return ~(fast | slow)
+
+
 def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad, settings, dropped, outliers):
     """Fit the frame and build the ordered traces of one compartment (None if it has too little)."""
     ridge = kind == 0
@@ -202,12 +211,12 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
     traces = []  # (flank, age, bound, V, D, sigma)
     if ridge.any():
         keep = _consistent(col[ridge], v[ridge], sigma[ridge])
+        used = ridge.copy()
         if not keep.all():
             outliers.extend(int(i) for i in np.flatnonzero(ridge)[~keep])
-            ridge = ridge.copy()
-            ridge[np.flatnonzero(ridge)[~keep]] = False
-        rv, rd = _trace(col[ridge], v[ridge], ncol, None, km_per_col)
-        ridge_trace = (0, 0.0, 0, rv, rd, float(np.median(sigma[ridge])))
+            used[np.flatnonzero(ridge)[~keep]] = False
+        rv, rd = _trace(col[used], v[used], ncol, None, km_per_col)
+        ridge_trace = (0, 0.0, 0, rv, rd, float(np.median(sigma[used])))
         cols = np.arange(ncol)
         side = np.sign(v - np.interp(col, cols, rv))
         flanks = (-1, 1)
@@ -220,7 +229,11 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
             sel = on & (bound == b)
             t = float(age[sel][0])
             base = None if previous is None else np.interp(col[sel], np.arange(ncol), previous[3])
-            keep = _consistent(col[sel], v[sel] - (0 if base is None else base), sigma[sel])
+            offset = v[sel] - (0 if base is None else base)
+            keep = np.ones(sel.sum(), bool)
+            if previous is not None:
+                keep = _plausible(offset * flank, sigma[sel], t - previous[1], settings)
+            keep[keep] = _consistent(col[sel][keep], offset[keep], sigma[sel][keep])
             if not keep.all():
                 idx = np.flatnonzero(sel)[~keep]
                 outliers.extend(int(i) for i in idx)

@@ -63,10 +63,10 @@ class SyntheticBasin:
     """
 
     pole: tuple[float, float] = (-60.0, 40.0)
-    bands: list[float] = field(default_factory=lambda: [-14.0, -5.0, 3.0, 12.0])
-    ridge_lon: list[float] = field(default_factory=lambda: [0.0, 2.2, 0.8])
+    bands: list[float] = field(default_factory=lambda: [-14.0, -5.0, 4.0, 14.0])
+    ridge_lon: list[float] = field(default_factory=lambda: [0.0, 2.4, 0.9])
     stages: list[Stage] = field(default_factory=lambda: [
-        Stage(8.0, 70.0, 55.0), Stage(20.0, 50.0, 45.0), Stage(36.0, 64.0, 52.0)])
+        Stage(10.0, 110.0, 55.0), Stage(24.0, 80.0, 45.0), Stage(40.0, 95.0, 52.0)])
 
     def __post_init__(self):
         self.rotation = _frame(*self.pole)
@@ -207,7 +207,7 @@ class SyntheticBasin:
 
     # --- a survey ----------------------------------------------------------------------------
     def survey(self, timescale, tracks: int, noise_km: float = 1.5, seed: int = 0,
-               picked=DEFAULT_PICKED, sample_km: float = 1.0, track_km: tuple = (900.0, 2500.0),
+               picked=DEFAULT_PICKED, sample_km: float = 1.0, track_km: tuple = (1500.0, 4000.0),
                spread_deg: float = 35.0) -> list[dict]:
         """Picks where random survey tracks cross the isochrons of the picked chron ends.
 

@@ -1,0 +1,52 @@
+"""The provenance record ``manifest.json``: inputs, settings, versions, timings, QA and outputs."""
+from __future__ import annotations
+
+import hashlib
+import json
+import platform
+import resource
+from importlib.metadata import PackageNotFoundError, version
+from pathlib import Path
+
+PACKAGES = ("agegrid", "numpy", "scipy", "xarray", "dask", "distributed", "rasterio", "rioxarray", "pyproj",
+            "netCDF4", "shapely", "matplotlib", "pydantic")
+
+
+def sha256(path: Path, block: int = 1 << 20) -> str:
+    """SHA-256 of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(block), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def describe_file(path: Path) -> dict:
+    return {"path": str(path), "bytes": path.stat().st_size, "sha256": sha256(path)}
+
+
+def versions() -> dict:
+    out = {"python": platform.python_version()}
+    for name in PACKAGES:
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = None
+    try:
+        import rasterio
+
+        out["gdal"] = rasterio.__gdal_version__
+    except ImportError:  # pragma: no cover - rasterio is a dependency
+        pass
+    return out
+
+
+def peak_memory_mb() -> dict:
+    """Peak resident memory of this process and of its finished children (MB)."""
+    me = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    return {"process": round(me, 1), "children": round(kids, 1)}
+
+
+def to_json(manifest: dict) -> str:
+    return json.dumps(manifest, indent=2, sort_keys=False, default=str) + "\n"

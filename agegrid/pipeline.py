@@ -1,0 +1,354 @@
+"""The build: stages wired from inputs to outputs, timed, logged, written atomically.
+
+Every stage is a function of its inputs; the layers stay lazy (dask) until the NetCDF is written,
+and the GeoTIFFs and statistics are read back from that file, so nothing is computed twice.
+"""
+from __future__ import annotations
+
+import contextlib
+import csv
+import io
+import logging
+import sys
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import dask
+import dask.array as da
+import numpy as np
+import xarray as xr
+
+from agegrid import __version__, thermal, timescale
+from agegrid.age import LAYERS, Settings, age_layers, build_age_model
+from agegrid.bathymetry import to_depth
+from agegrid.compartments import build_compartments
+from agegrid.control import build_control
+from agegrid.errors import BadInput
+from agegrid.grid import GridSpec
+from agegrid.io import atomic
+from agegrid.io.geotiff import write_cog
+from agegrid.io.netcdf import dataset, write_netcdf
+from agegrid.io.points import read_picks
+from agegrid.io.rasters import read_grid
+from agegrid.io.vectors import read_lines, read_polygons
+from agegrid.lock import BuildLock
+from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
+from agegrid.notices import CAUTION
+from agegrid.qa import check_picks
+from agegrid.residual import binned_statistics, fit_sqrt_age, residual
+from agegrid.sediment import lithology_from_config
+from agegrid.variables import attributes
+
+log = logging.getLogger("agegrid")
+
+#: Layers written as GeoTIFF (the bracket indices and fraction stay in the NetCDF, for retiming).
+NOT_IN_GEOTIFF = ("age_bracket_young", "age_bracket_old", "age_fraction")
+#: float32 layers held at once at the peak of a build, for the size check.
+LAYERS_IN_MEMORY = 6
+
+
+class Stages:
+    """Times and logs named stages."""
+
+    def __init__(self):
+        self.timings: dict[str, float] = {}
+
+    @contextlib.contextmanager
+    def __call__(self, name: str):
+        log.info("stage %s ...", name)
+        start = time.perf_counter()
+        yield
+        self.timings[name] = round(time.perf_counter() - start, 3)
+        log.info("stage %s done in %.2f s", name, self.timings[name])
+
+
+def read_inputs(config) -> dict:
+    """Read every input named in the build file (no geophysics yet)."""
+    inp = config.inputs
+    return {
+        "picks": read_picks(inp.picks),
+        "ridges": read_lines(inp.ridges),
+        "isochrons": read_lines(inp.isochrons) if inp.isochrons else [],
+        "barriers": read_lines(inp.barriers) if inp.barriers else [],
+        "domain": read_polygons(inp.domain) if inp.domain else None,
+        "timescale": timescale.load(config.age.timescale),
+    }
+
+
+def _elementwise(func, array, dtype=np.float32):
+    return da.map_blocks(lambda block: func(block).astype(dtype), array, dtype=dtype)
+
+
+def _engine_settings(config) -> Settings:
+    return Settings(max_extrapolation_myr=config.age.max_extrapolation_myr,
+                    timescale_sigma_percent=config.age.timescale_sigma_percent,
+                    min_half_rate=config.picks.min_half_rate_mm_yr, max_half_rate=config.picks.max_half_rate_mm_yr)
+
+
+def _models(config) -> dict:
+    return {name: thermal.get_model(name, config.depth.parameters.get(name)) for name in config.depth.models}
+
+
+def plan(config) -> dict:
+    """What a build would read and write, for ``agegrid validate``."""
+    spec = GridSpec.from_config(config.grid)
+    out = config.output.directory
+    names = ["age", "age_uncertainty", "age_flag", "half_rate", "spreading_azimuth"]
+    names += [f"{k}_{m}" for m in config.depth.models for k in ("depth", "heat_flow")]
+    if config.inputs.bathymetry:
+        names += ["observed_depth"] + [f"residual_{m}" for m in config.depth.models]
+        if config.inputs.sediment:
+            names += ["sediment_correction"]
+    writes = []
+    if "netcdf" in config.output.formats:
+        writes.append(out / f"{config.name}.nc")
+    if "geotiff" in config.output.formats:
+        writes += [out / f"{config.name}_{n}.tif" for n in names]
+    if "zarr" in config.output.formats:
+        writes.append(out / f"{config.name}.zarr")
+    writes.append(out / "manifest.json")
+    return {"grid": {"shape": list(spec.shape), "cells": spec.size, "crs": spec.crs, "chunks": list(spec.chunks)},
+            "reads": [str(p) for _, p in config.inputs if p is not None],
+            "writes": [str(p) for p in writes], "variables": names}
+
+
+def compute_layers(config, inputs: dict, stages: Stages) -> tuple[dict, dict, dict]:
+    """All output layers as lazy arrays, with their attributes and the facts for the manifest."""
+    spec = GridSpec.from_config(config.grid)
+    spec.check_size(LAYERS_IN_MEMORY, config.source)
+    facts: dict = {"notes": []}
+    scale = inputs["timescale"]
+    with stages("control"):
+        step = (np.radians(spec.spacing) if spec.geographic else spec.spacing / 6.371e6) / 2
+        control = build_control(inputs["picks"], scale, inputs["ridges"], step, inputs["isochrons"],
+                                config.inputs.isochrons, config.age.pick_sigma_km)
+    with stages("compartments"):
+        comps = build_compartments(spec, [f.lonlat for f in inputs["barriers"]], inputs["domain"],
+                                   extend=config.age.extend_barriers)
+        facts["compartments"] = comps.count
+    with stages("pick QA"):
+        qa = check_picks(control, spec, comps, config.picks)
+        facts["qa"] = qa.summary()
+        if qa.findings and config.picks.suspect == "fail":
+            first = qa.findings[0]
+            raise BadInput(f"suspect pick {first['id']}: {first['problem']} ({len(qa.findings)} findings; "
+                           "picks.suspect = 'fail')", config.inputs.picks, first["where"])
+        if qa.findings and config.picks.suspect == "drop":
+            control = control.subset(~np.isin(control.source_index, qa.suspect_indices()) | (control.kind != 2))
+    with stages("age model"):
+        model = build_age_model(spec, comps, control, _engine_settings(config))
+        facts["age_model"] = {"compartments_with_control": len(model.compartments),
+                              "dropped_traces": model.dropped,
+                              "outlier_control_points": int(len(model.outliers))}
+    layers = age_layers(spec, comps, model)
+    dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16,
+              "compartment": np.int32}
+    layers = {k: v.astype(dtypes.get(k, np.float32)) for k, v in layers.items()}
+    attrs = {name: attributes(name) for name in layers}
+    attrs["age_flag"]["flag_values"] = np.array(attrs["age_flag"]["flag_values"], dtype=np.int8)
+    for name in ("age_bracket_young", "age_bracket_old"):
+        attrs[name]["boundary_labels"] = " ".join(model.labels)
+        attrs[name]["boundary_ages_ma"] = np.asarray(model.ages, dtype=np.float64)
+    attrs["age"]["timescale"] = scale.name
+    attrs["age"]["comment"] = ("distance-ratio interpolation between bracketing isochron traces within "
+                               "compartments bounded by barriers; see age_flag")
+    age = layers["age"]
+    for name, cooling in _models(config).items():
+        layers[f"depth_{name}"] = _elementwise(cooling.depth, age)
+        layers[f"heat_flow_{name}"] = _elementwise(cooling.heat_flow, age)
+        attrs[f"depth_{name}"] = attributes(f"depth_{name}")
+        attrs[f"heat_flow_{name}"] = attributes(f"heat_flow_{name}")
+        if config.depth.isotherm_c is not None:
+            t_iso = config.depth.isotherm_c
+            layers[f"isotherm_depth_{name}"] = _elementwise(lambda a, c=cooling: c.isotherm_depth(a, t_iso), age)
+            attrs[f"isotherm_depth_{name}"] = {**attributes(f"isotherm_depth_{name}"), "isotherm_c": t_iso}
+    if config.inputs.bathymetry:
+        with stages("observed depth"):
+            values, source_attrs = read_grid(config.inputs.bathymetry, spec)
+            depth, statement = to_depth(values, source_attrs, config.depth.bathymetry_sign)
+            facts["notes"].append(statement)
+            log.info(statement)
+            corrected = depth
+            layers["observed_depth"] = da.from_array(depth.astype(np.float32), chunks=spec.chunks)
+            attrs["observed_depth"] = {**attributes("observed_depth"), "comment": statement}
+            if config.inputs.sediment:
+                thickness, _ = read_grid(config.inputs.sediment, spec)
+                lith = lithology_from_config(config.sediment)
+                correction = lith.correction(thickness).astype(np.float32)
+                corrected = depth + np.where(np.isfinite(correction), correction, 0.0)
+                layers["sediment_correction"] = da.from_array(correction, chunks=spec.chunks)
+                attrs["sediment_correction"] = {**attributes("sediment_correction"),
+                                                "comment": f"Airy unloading, {lith.name}: {lith.reference}"}
+                facts["sediment"] = {k: getattr(lith, k) for k in ("name", "surface_porosity", "compaction_per_km",
+                                                                   "grain_density", "mantle_density",
+                                                                   "water_density", "reference")}
+            corrected = da.from_array(corrected.astype(np.float32), chunks=spec.chunks)
+            for name in config.depth.models:
+                layers[f"residual_{name}"] = residual(layers[f"depth_{name}"], corrected).astype(np.float32)
+                attrs[f"residual_{name}"] = attributes(f"residual_{name}")
+    facts["timescale"] = scale.describe()
+    facts["models"] = {name: m.describe() for name, m in _models(config).items()}
+    facts["model_labels"] = model.labels
+    return layers, attrs, facts
+
+
+def _global_attrs(config, facts) -> dict:
+    now = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    refs = [facts["timescale"]["reference"]] + [m["reference"] for m in facts["models"].values()]
+    return {
+        "title": f"agegrid build {config.name}: seafloor age and derived layers",
+        "institution": "produced with agegrid",
+        "source": f"agegrid {__version__}; full provenance in manifest.json beside this file",
+        "history": f"{now} agegrid {__version__} build {config.source} (see manifest.json)",
+        "references": "; ".join(refs),
+        "comment": CAUTION,
+        "timescale": facts["timescale"]["name"],
+    }
+
+
+def _depth_tables(config, ds: xr.Dataset) -> tuple[str, dict]:
+    """The age-binned residual statistics CSV and the sqrt(age) fit of corrected depth."""
+    age = ds["age"].values.ravel()
+    rows = []
+    for name in config.depth.models:
+        if f"residual_{name}" in ds:
+            for row in binned_statistics(age, ds[f"residual_{name}"].values.ravel(), config.depth.age_bin_myr):
+                rows.append({"model": name, **row})
+    buffer = io.StringIO()
+    writer = csv.DictWriter(buffer, ["model", "age_from_myr", "age_to_myr", "cells", "median_m", "iqr_m"],
+                            lineterminator="\n")
+    writer.writeheader()
+    writer.writerows(rows)
+    fit = None
+    if "observed_depth" in ds:
+        corrected = ds["observed_depth"].values + (ds["sediment_correction"].values if "sediment_correction" in ds
+                                                   else 0.0)
+        fit = fit_sqrt_age(age, np.asarray(corrected).ravel(), tuple(config.depth.fit_age_range))
+        if fit is not None:
+            fit["models"] = {}
+            for name, model in _models(config).items():
+                t = np.linspace(max(config.depth.fit_age_range[0], 0.01), config.depth.fit_age_range[1], 200)
+                model_fit = fit_sqrt_age(t, model.depth(t), tuple(config.depth.fit_age_range))
+                fit["models"][name] = {k: model_fit[k] for k in ("ridge_depth_m", "sqrt_coefficient_m")}
+    return buffer.getvalue(), fit
+
+
+@contextlib.contextmanager
+def scheduler(address: str | None = None, workers: int | None = None):
+    """The dask scheduler for a build: a cluster at ``address``, N local processes, or threads."""
+    if address or workers:
+        from distributed import Client, LocalCluster
+
+        if address:
+            client, cluster = Client(address), None
+        else:
+            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                   dashboard_address="127.0.0.1:0")
+            client = Client(cluster)
+        try:
+            yield {"kind": "distributed", "address": client.scheduler.address}
+        finally:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+    else:
+        with dask.config.set(scheduler="threads"):
+            yield {"kind": "threads"}
+
+
+def build(config, force: bool = False, address: str | None = None, workers: int | None = None,
+          progress: bool = True) -> dict:
+    """Run a whole build; returns the manifest. Outputs are replaced only when everything succeeded."""
+    out_dir = Path(config.output.directory)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    with BuildLock(out_dir):
+        removed = atomic.clean_stale(out_dir)
+        if removed:
+            log.info("removed %d temporary file(s) left by an interrupted build", len(removed))
+        stages = Stages()
+        started = time.perf_counter()
+        with stages("read inputs"):
+            inputs = read_inputs(config)
+        layers, attrs, facts = compute_layers(config, inputs, stages)
+        spec = GridSpec.from_config(config.grid)
+        ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
+        staged: dict[Path, Path] = {}
+        try:
+            with scheduler(address, workers) as sched:
+                nc_target = out_dir / f"{config.name}.nc"
+                with stages("write netcdf"), _progress(progress and sched["kind"] == "threads"):
+                    staged_nc = write_netcdf(ds, nc_target, spec)
+                if "netcdf" in config.output.formats:
+                    staged[nc_target] = staged_nc
+                written = xr.open_dataset(staged_nc, chunks={}, mask_and_scale=True)
+                with written:
+                    if "geotiff" in config.output.formats:
+                        with stages("write geotiff"):
+                            for name in ds.data_vars:
+                                if name in NOT_IN_GEOTIFF or name == "crs" or name == "compartment":
+                                    continue
+                                target = out_dir / f"{config.name}_{name}.tif"
+                                staged[target] = write_cog(written[name].data, target, spec, attrs[name])
+                    if "zarr" in config.output.formats:
+                        from agegrid.io.zarr import write_zarr
+
+                        with stages("write zarr"):
+                            target = out_dir / f"{config.name}.zarr"
+                            staged[target] = write_zarr(written, target, spec)
+                    with stages("depth statistics"):
+                        table, fit = _depth_tables(config, written)
+                        facts["depth_fit"] = fit
+                if config.inputs.bathymetry:
+                    target = out_dir / f"{config.name}_depth_stats.csv"
+                    staged[target] = _stage_text(target, table)
+            if "netcdf" not in config.output.formats:
+                staged_nc.unlink()
+            outputs = [{"path": str(t), **{k: v for k, v in describe_file(s).items() if k != "path"}}
+                       for t, s in staged.items() if s.is_file()]
+            manifest = {
+                "agegrid": __version__, "name": config.name,
+                "built": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                "build_file": describe_file(Path(config.source)),
+                "config": config.model_dump(mode="json"),
+                "inputs": {k: describe_file(Path(p)) for k, p in config.inputs if p is not None},
+                "grid": plan(config)["grid"], "scheduler": sched, "versions": versions(),
+                **{k: v for k, v in facts.items() if k != "model_labels"},
+                "timings_s": {**stages.timings, "total": round(time.perf_counter() - started, 3)},
+                "peak_memory_mb": peak_memory_mb(), "outputs": outputs, "caution": CAUTION,
+            }
+            staged[out_dir / "manifest.json"] = _stage_text(out_dir / "manifest.json", to_json(manifest))
+            for target, source in staged.items():
+                atomic.replace(source, target)
+            staged.clear()
+        finally:
+            for source in staged.values():
+                if source.is_dir():
+                    import shutil
+
+                    shutil.rmtree(source, ignore_errors=True)
+                else:
+                    source.unlink(missing_ok=True)
+        log.info("build %s done in %.1f s: %d outputs in %s", config.name, manifest["timings_s"]["total"],
+                 len(outputs) + 1, out_dir)
+        return manifest
+
+
+def _stage_text(target: Path, text: str) -> Path:
+    staged = atomic.staging_path(target)
+    staged.write_text(text, encoding="utf-8")
+    return staged
+
+
+@contextlib.contextmanager
+def _progress(show: bool):
+    if show and sys.stderr.isatty():
+        from dask.diagnostics import ProgressBar
+
+        with ProgressBar(minimum=2.0, out=sys.stderr):
+            yield
+    else:
+        yield
+
+
+__all__ = ["build", "plan", "compute_layers", "read_inputs", "LAYERS", "sha256"]

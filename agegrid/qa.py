@@ -1,0 +1,124 @@
+"""Pick QA: duplicates, picks off the grid or the domain, age inversions and implausible rates.
+
+Rates are judged against bounds from ``[picks]``: by default 2 to 100 mm/yr half rate. The fastest
+present-day spreading is roughly 75-80 mm/yr half rate (common practice), so 100 leaves room for
+noise; 2 mm/yr is slower than the slowest ridges (common practice).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from agegrid import sphere
+
+R = sphere.EARTH_RADIUS_KM
+
+
+@dataclass
+class QAReport:
+    """Findings, one per suspect pick and problem."""
+
+    findings: list[dict] = field(default_factory=list)
+    checked: int = 0
+
+    def add(self, table, index: int, kind: str, problem: str) -> None:
+        self.findings.append({"id": table.ids[index], "where": table.where[index], "kind": kind,
+                              "problem": problem, "index": int(index)})
+
+    def suspect_indices(self) -> np.ndarray:
+        return np.unique([f["index"] for f in self.findings]).astype(np.int64)
+
+    def summary(self) -> dict:
+        kinds = {}
+        for f in self.findings:
+            kinds[f["kind"]] = kinds.get(f["kind"], 0) + 1
+        return {"picks_checked": self.checked, "findings": len(self.findings), "by_kind": kinds,
+                "suspect_picks": [{k: f[k] for k in ("id", "where", "kind", "problem")} for f in self.findings]}
+
+
+def _ridge_geometry(control, labels):
+    """Per compartment: ridge unit vectors and their along-ridge tangents."""
+    out = {}
+    ridge = control.kind == 0
+    xyz = control.xyz
+    for lab in np.unique(labels[ridge]):
+        pts = xyz[ridge & (labels == lab)]
+        if len(pts) < 2:
+            continue
+        tangent = np.gradient(pts, axis=0)
+        tangent /= np.maximum(np.linalg.norm(tangent, axis=1, keepdims=True), 1e-15)
+        out[int(lab)] = (cKDTree(pts), pts, tangent)
+    return out
+
+
+def check_picks(control, spec, compartments, settings) -> QAReport:
+    """Run every pick check; ``settings`` is the ``[picks]`` section."""
+    table = control.picks
+    report = QAReport(checked=len(table))
+    is_pick = control.kind == 2
+    idx = control.source_index[is_pick]
+    lon, lat, age = control.lon[is_pick], control.lat[is_pick], control.age[is_pick]
+    label = compartments.assign(spec, lon, lat)
+    _, _, on_grid = spec.index(lon, lat)
+    for i in np.flatnonzero(~on_grid):
+        report.add(table, idx[i], "outside_grid", "lies outside the grid region")
+    for i in np.flatnonzero(on_grid & (label == 0)):
+        report.add(table, idx[i], "outside_domain", "lies outside the oceanic domain")
+    xyz = sphere.to_xyz(lon, lat)
+    # duplicates: same boundary within duplicate_km
+    tree = cKDTree(xyz)
+    bounds = control.boundary[is_pick]
+    for i, j in sorted(tree.query_pairs(settings.duplicate_km / R)):
+        if bounds[i] == bounds[j]:
+            report.add(table, idx[j], "duplicate", f"duplicates pick {table.ids[idx[i]]} "
+                       f"({table.where[idx[i]]}) within {settings.duplicate_km:g} km")
+    # distance from the ridge and side, per compartment
+    ridges = _ridge_geometry(control, compartments.assign(spec, control.lon, control.lat))
+    dist = np.full(len(lon), np.nan)
+    side = np.zeros(len(lon), int)
+    for lab, (rtree, pts, tangent) in ridges.items():
+        sel = np.flatnonzero(label == lab)
+        if not len(sel):
+            continue
+        d, k = rtree.query(xyz[sel])
+        normal = np.cross(pts[k], tangent[k])
+        side[sel] = np.sign(np.sum(xyz[sel] * normal, axis=1)).astype(int)
+        dist[sel] = d * R
+    tracks = np.array(table.track, dtype=object)[idx]
+    tol_km = 3 * np.nanmedian(control.sigma_km[is_pick]) if is_pick.any() else 6.0
+    for key in {(t, l, s) for t, l, s in zip(tracks, label, side) if t and l and s}:
+        members = np.flatnonzero((tracks == key[0]) & (label == key[1]) & (side == key[2]) & np.isfinite(dist))
+        if len(members) < 2:
+            continue
+        order = members[np.argsort(dist[members], kind="stable")]
+        d, a = dist[order], age[order]
+        for n in range(1, len(order)):
+            nearer = d < d[n] - tol_km
+            if nearer.any() and a[n] < a[nearer].max() - 0.05:
+                m = order[np.flatnonzero(nearer)[np.argmax(a[nearer])]]
+                report.add(table, idx[order[n]], "age_inversion",
+                           f"age {a[n]:.3f} Ma lies {d[n]:.1f} km from the ridge, farther than pick "
+                           f"{table.ids[idx[m]]} of {age[m]:.3f} Ma on the same track and flank")
+        for n in range(1, len(order)):
+            dd, dt = d[n] - d[n - 1], a[n] - a[n - 1]
+            if dt <= 0.05 or a[n] <= 0:
+                continue
+            rate = dd / dt
+            if rate > settings.max_half_rate_mm_yr or rate < settings.min_half_rate_mm_yr:
+                own = d[n] / a[n]
+                prev = d[n - 1] / a[n - 1] if a[n - 1] > 0 else own
+                typical = np.median(d[a > 0] / a[a > 0])
+                culprit = n if abs(own - typical) >= abs(prev - typical) else n - 1
+                report.add(table, idx[order[culprit]], "implausible_rate",
+                           f"implies a half-rate of {rate:.1f} mm/yr against its neighbour on the same "
+                           f"track (bounds {settings.min_half_rate_mm_yr:g}-{settings.max_half_rate_mm_yr:g})")
+    seen, unique = set(), []
+    for f in report.findings:
+        key = (f["index"], f["kind"])
+        if key not in seen:
+            seen.add(key)
+            unique.append(f)
+    report.findings = unique
+    return report

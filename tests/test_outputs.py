@@ -1,0 +1,110 @@
+"""Outputs: CF-1.8 NetCDF (IOOS compliance-checker), COG read back by GDAL (rasterio), manifest."""
+import json
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rasterio
+import xarray as xr
+
+from agegrid.manifest import sha256
+
+CHECKER = Path(sys.executable).with_name("compliance-checker")
+
+
+def cf_report(path: Path, tmp_path: Path) -> dict:
+    """Run the IOOS compliance-checker's cf:1.8 suite and return its JSON report."""
+    out = tmp_path / "cf.json"
+    result = subprocess.run([str(CHECKER), "-t", "cf:1.8", "-f", "json", "-o", str(out), str(path)],
+                            capture_output=True, text=True, timeout=300)
+    assert result.returncode in (0, 1), result.stderr
+    return json.loads(out.read_text())["cf:1.8"]
+
+
+def failures(report: dict, priority: str) -> list:
+    return [(i["name"], i["msgs"]) for i in report[f"{priority}_priorities"] if i["value"][0] < i["value"][1]]
+
+
+def test_netcdf_passes_cf_checker(demo_build, tmp_path):
+    report = cf_report(demo_build / "veyra-basin.nc", tmp_path)
+    assert report["high_count"] == 0, failures(report, "high")
+    assert report["medium_count"] == 0, failures(report, "medium")
+
+
+def test_netcdf_content(demo_build):
+    with xr.open_dataset(demo_build / "veyra-basin.nc") as ds:
+        assert ds.attrs["Conventions"] == "CF-1.8"
+        for key in ("title", "history", "source", "comment"):
+            assert ds.attrs[key]
+        assert "manifest.json" in ds.attrs["source"] and "safety" in ds.attrs["comment"]
+        assert ds["age"].attrs["units"] == "Myr"
+        assert ds["heat_flow_gdh1"].attrs["standard_name"] == "upward_geothermal_heat_flux_at_sea_floor"
+        assert ds["lat"].attrs["standard_name"] == "latitude" and "_FillValue" not in ds["lat"].encoding
+        assert ds["crs"].dtype == np.int32
+        for name in ("age", "age_uncertainty", "half_rate", "spreading_azimuth", "depth_gdh1", "depth_ps77",
+                     "depth_hsc", "depth_plate", "heat_flow_gdh1", "observed_depth", "sediment_correction",
+                     "residual_gdh1"):
+            assert name in ds, name
+        enc = ds["age"].encoding
+        assert enc["zlib"] and enc["chunksizes"] == (256, 256)
+        # GDH1 depth is the Stein & Stein (1992) formula of the age grid
+        age = ds["age"].values
+        ok = np.isfinite(age)
+        expect = np.where(age < 20, 2600 + 365 * np.sqrt(age), 5651 - 2473 * np.exp(-0.0278 * age))
+        assert np.allclose(ds["depth_gdh1"].values[ok], expect[ok], atol=0.01)
+
+
+def test_geotiff_is_cog_with_crs_transform_and_values(demo_build):
+    from rio_cogeo.cogeo import cog_validate
+
+    with xr.open_dataset(demo_build / "veyra-basin.nc") as ds:
+        for name in ("age", "half_rate", "depth_gdh1", "age_flag"):
+            path = demo_build / f"veyra-basin_{name}.tif"
+            valid, errors, _ = cog_validate(str(path), quiet=True)
+            assert valid, errors
+            with rasterio.open(path) as src:
+                assert src.crs.to_epsg() == 4326
+                lon, lat = ds["lon"].values, ds["lat"].values
+                step = lon[1] - lon[0]
+                assert src.transform.a == pytest.approx(step) and src.transform.e == pytest.approx(-step)
+                assert src.transform.c == pytest.approx(lon[0] - step / 2)
+                assert src.transform.f == pytest.approx(lat[0] + step / 2)
+                assert src.overviews(1) or max(src.shape) <= 256, "COG without overviews"
+                band = src.read(1, masked=True)
+                values = ds[name].values
+                finite = np.isfinite(values) if values.dtype.kind == "f" else np.ones(values.shape, bool)
+                assert np.array_equal(band.mask, ~finite) or values.dtype.kind != "f"
+                assert np.allclose(band.filled(np.nan)[finite], values[finite])
+                assert src.tags(1).get("units") == ds[name].attrs.get("units")
+                assert src.descriptions[0] == ds[name].attrs["long_name"]
+
+
+def test_manifest(demo_build):
+    manifest = json.loads((demo_build / "manifest.json").read_text())
+    for key in ("inputs", "config", "versions", "timings_s", "timescale", "models", "qa", "outputs", "caution"):
+        assert key in manifest
+    for entry in manifest["inputs"].values():
+        assert entry["sha256"] == sha256(Path(entry["path"]))
+    for entry in manifest["outputs"]:
+        assert entry["sha256"] == sha256(Path(entry["path"])), entry["path"]
+    assert manifest["timescale"]["name"] == "CK95"
+    assert manifest["models"]["gdh1"]["parameters"]["decay_per_myr"] == 0.0278
+    assert manifest["timings_s"]["total"] > 0
+    assert {"netcdf", "geotiff"} == set(manifest["config"]["output"]["formats"])
+
+
+def test_failed_build_leaves_outputs_alone(demo_copy):
+    from agegrid.cli import main
+
+    folder = demo_copy.parent
+    assert main(["build", str(demo_copy), "--quiet"]) == 0
+    out = folder / "out"
+    before = {p.name: sha256(p) for p in out.iterdir() if p.is_file()}
+    (folder / "picks.csv").write_text("lon,lat,age_ma\n1,2,3\nx,2,3\n")
+    assert main(["build", str(demo_copy), "--quiet"]) == 2
+    after = {p.name: sha256(p) for p in out.iterdir() if p.is_file()}
+    assert before == after
+    assert not list(out.glob(".agegrid-tmp-*"))
