@@ -233,7 +233,8 @@ def load_build_file(path: str | Path) -> BuildConfig:
     try:
         config = BuildConfig.model_validate(raw)
     except ValidationError as exc:
-        key, what = _explain(exc.errors()[0])
+        errors = sorted(exc.errors(), key=lambda e: {"extra_forbidden": 0, "missing": 2}.get(e["type"], 1))
+        key, what = _explain(errors[0])
         raise BadInput(what, path, key) from None
     return resolve_paths(config, path)
 

@@ -26,13 +26,19 @@ DEFAULT_PICKED = [
 ]
 
 
-def _frame(pole_lon: float, pole_lat: float) -> np.ndarray:
-    """Rotation matrix taking geographic unit vectors to the pole frame (P on the +z axis)."""
+def _frame(pole_lon: float, pole_lat: float, spin_deg: float = 0.0) -> np.ndarray:
+    """Rotation matrix taking geographic unit vectors to the pole frame (P on the +z axis).
+
+    The frame's x axis (where the basin sits) starts on the geographic equator and is turned by
+    ``spin_deg`` about P, which moves the basin along P's equator toward higher latitudes.
+    """
     z = sphere.to_xyz(pole_lon, pole_lat)
     helper = np.array([0.0, 0.0, 1.0]) if abs(z[2]) < 0.9 else np.array([1.0, 0.0, 0.0])
     x = np.cross(helper, z)
     x /= np.linalg.norm(x)
     y = np.cross(z, x)
+    b = np.radians(spin_deg)
+    x, y = np.cos(b) * x + np.sin(b) * y, -np.sin(b) * x + np.cos(b) * y
     return np.stack([x, y, z])
 
 
@@ -67,9 +73,10 @@ class SyntheticBasin:
     ridge_lon: list[float] = field(default_factory=lambda: [0.0, 2.4, 0.9])
     stages: list[Stage] = field(default_factory=lambda: [
         Stage(10.0, 110.0, 55.0), Stage(24.0, 80.0, 45.0), Stage(40.0, 95.0, 52.0)])
+    spin_deg: float = 0.0
 
     def __post_init__(self):
-        self.rotation = _frame(*self.pole)
+        self.rotation = _frame(*self.pole, self.spin_deg)
         ends = np.array([0.0] + [s.until_ma for s in self.stages])
         omega = np.array([s.full_rate_mm_yr for s in self.stages]) / sphere.EARTH_RADIUS_KM  # rad/Myr
         share = np.array([s.share_percent for s in self.stages]) / 100.0
@@ -202,8 +209,10 @@ class SyntheticBasin:
         """A geographic box around the basin (west, east, south, north)."""
         lon, lat = np.asarray(self.domain_polygon().exterior.coords).T
         lon = np.degrees(np.unwrap(np.radians(lon)))
-        return (float(np.floor(lon.min() - margin_deg)), float(np.ceil(lon.max() + margin_deg)),
-                float(np.floor(lat.min() - margin_deg)), float(np.ceil(lat.max() + margin_deg)))
+        shift = 360.0 * np.floor((lon.min() + 180.0) / 360.0)
+        west, east = lon.min() - shift, lon.max() - shift
+        return (float(np.floor(west - margin_deg)), float(np.ceil(east + margin_deg)),
+                float(max(-90.0, np.floor(lat.min() - margin_deg))), float(min(90.0, np.ceil(lat.max() + margin_deg))))
 
     # --- a survey ----------------------------------------------------------------------------
     def survey(self, timescale, tracks: int, noise_km: float = 1.5, seed: int = 0,

@@ -1,0 +1,124 @@
+"""The age engine on synthetic basins with exactly known ages (the main truth for the engine).
+
+Basins: three oblique ridge segments offset by transforms, fracture zones as barriers, asymmetric and
+stage-wise changing rates (see agegrid.synthetic), picks where random survey tracks cross the
+isochrons of CK95 chron ends, with 1.5 km Gaussian position noise per axis.
+"""
+import numpy as np
+import pytest
+from scipy.interpolate import griddata
+
+from agegrid import sphere
+from agegrid.synthetic import SyntheticBasin
+from tests.engine import run_engine
+from tests.helpers import scores
+
+
+@pytest.fixture(scope="module")
+def dense(tmp_path_factory):
+    return run_engine(tmp_path_factory.mktemp("dense"), tracks=60, seed=1)
+
+
+def test_dense_picks_accuracy(dense):
+    s = scores(dense.error)
+    assert s["rms"] <= 0.15 and s["p95"] <= 0.3, s
+    assert dense.empty_fraction() <= 0.01
+
+
+def test_dense_near_fracture_zones_as_good_as_elsewhere(dense):
+    near = dense.near_barrier(0.5)
+    s_near = scores(np.where(near, dense.error, np.nan))
+    s_far = scores(np.where(~near, dense.error, np.nan))
+    assert s_near["rms"] <= 0.15 and s_near["p95"] <= 0.3, s_near
+    assert s_near["rms"] <= 1.5 * s_far["rms"] + 0.02, (s_near, s_far)
+
+
+def test_griddata_smears_across_fracture_zones(dense, tmp_path):
+    """The generic gridder (scipy linear griddata over picks and ridge points) is far worse near FZs."""
+    picks = [(r["lon"], r["lat"], r["age_ma"]) for r in dense.basin.survey(
+        __import__("agegrid.timescale", fromlist=["load"]).load("CK95"), 60, seed=1)]
+    ridge = np.concatenate(dense.basin.ridges())
+    pts = np.concatenate([np.array([p[:2] for p in picks]), ridge])
+    vals = np.concatenate([[p[2] for p in picks], np.zeros(len(ridge))])
+    generic = griddata(pts, vals, (dense.lon, dense.lat), method="linear")
+    near = dense.near_barrier(0.5) & np.isfinite(dense.truth)
+    generic_rms = scores(np.where(near, generic - dense.truth, np.nan))["rms"]
+    ours = scores(np.where(near, dense.error, np.nan))["rms"]
+    assert generic_rms > 1.0 and ours < generic_rms / 5
+
+
+@pytest.mark.parametrize("seed", [1, 2, 4])
+def test_sparse_picks_accuracy(tmp_path, seed):
+    run = run_engine(tmp_path, tracks=25, seed=seed)
+    s = scores(run.error)
+    assert s["rms"] <= 0.3 and s["p95"] <= 0.6, s
+    near = scores(np.where(run.near_barrier(0.5), run.error, np.nan))
+    assert near["rms"] <= 0.3 and near["p95"] <= 0.6, near
+    assert run.empty_fraction() <= 0.01
+
+
+def test_half_rate_and_azimuth(dense):
+    ok = np.isfinite(dense.layers["half_rate"]) & np.isfinite(dense.truth)
+    rel = np.abs(dense.layers["half_rate"][ok] / dense.basin.half_rate(dense.lon, dense.lat)[ok] - 1)
+    assert np.median(rel) <= 0.05
+    daz = np.abs((dense.layers["spreading_azimuth"] - dense.basin.azimuth(dense.lon, dense.lat) + 180) % 360 - 180)
+    assert np.nanmedian(daz[ok]) <= 5
+    assert not np.isinf(dense.layers["half_rate"]).any()
+
+
+def test_uncertainty_is_sane(dense):
+    sigma = dense.layers["age_uncertainty"]
+    ok = np.isfinite(dense.layers["age"])
+    assert np.isfinite(sigma[ok]).mean() > 0.99 and (sigma[ok & np.isfinite(sigma)] > 0).all()
+    # about one sigma: the observed errors are of the order of the stated uncertainty
+    ratio = np.nanmedian(np.abs(dense.error[ok]) / sigma[ok])
+    assert 0.1 < ratio < 3.0
+
+
+def test_chunk_size_does_not_change_results(tmp_path):
+    basin = SyntheticBasin()
+    a = run_engine(tmp_path, basin, tracks=30, seed=5, spacing=0.1, chunk=64)
+    b = run_engine(tmp_path, basin, tracks=30, seed=5, spacing=0.1, chunk=512)
+    for name in a.layers:
+        assert np.array_equal(a.layers[name], b.layers[name], equal_nan=True), name
+
+
+def test_antimeridian_region_is_seamless(tmp_path):
+    basin = SyntheticBasin(pole=(90.0, 40.0))
+    region = basin.region(0.5)
+    assert region[0] < 180 < region[1]
+    run = run_engine(tmp_path, basin, tracks=60, seed=2, spacing=0.1, region=region)
+    s = scores(run.error)
+    assert s["rms"] <= 0.15 and s["p95"] <= 0.3, s
+    seam = np.abs(run.lon - 180) < 1.0
+    assert scores(np.where(seam, run.error, np.nan))["rms"] <= 0.15
+
+
+def test_high_latitude_region(tmp_path):
+    basin = SyntheticBasin(pole=(-60.0, 25.0), spin_deg=90.0)
+    region = basin.region(0.5)
+    assert region[3] > 75
+    run = run_engine(tmp_path, basin, tracks=60, seed=3, spacing=0.1, region=region)
+    s = scores(run.error)
+    assert s["rms"] <= 0.15 and s["p95"] <= 0.3, s
+    assert run.empty_fraction() <= 0.01
+
+
+def test_polar_cap_across_the_pole(tmp_path):
+    basin = SyntheticBasin(pole=(-60.0, 12.0), spin_deg=90.0, bands=[-6.0, 0.0, 6.0], ridge_lon=[0.0, 1.5],
+                           stages=[__import__("agegrid.synthetic", fromlist=["Stage"]).Stage(12.0, 90.0, 50.0)])
+    run = run_engine(tmp_path, basin, tracks=50, seed=4, spacing=0.2, region=(-180.0, 180.0, 66.0, 90.0))
+    s = scores(run.error)
+    assert s["rms"] <= 0.3, s
+    assert run.empty_fraction() <= 0.01
+
+
+def test_great_circle_metric_against_pyproj():
+    """The engine's distances are great-circle distances (checked against pyproj's geodesic on a sphere)."""
+    import pyproj
+
+    geod = pyproj.Geod(a=sphere.EARTH_RADIUS_KM * 1e3, b=sphere.EARTH_RADIUS_KM * 1e3)
+    lon1, lat1, lon2, lat2 = np.array([10.0, 170.0, -30.0]), np.array([5.0, -40.0, 80.0]), \
+        np.array([12.0, -175.0, 150.0]), np.array([6.5, -41.0, 85.0])
+    _, _, dist = geod.inv(lon1, lat1, lon2, lat2)
+    assert np.allclose(sphere.distance_km(lon1, lat1, lon2, lat2), dist / 1e3, rtol=1e-9)
