@@ -127,20 +127,23 @@ def compute_layers(config, inputs: dict, stages: Stages) -> tuple[dict, dict, di
         comps = build_compartments(spec, [f.lonlat for f in inputs["barriers"]], inputs["domain"],
                                    extend=config.age.extend_barriers)
         facts["compartments"] = comps.count
+    with stages("age model"):
+        model = build_age_model(spec, comps, control, _engine_settings(config))
     with stages("pick QA"):
-        qa = check_picks(control, spec, comps, config.picks)
+        qa = check_picks(control, spec, comps, config.picks, model)
         facts["qa"] = qa.summary()
         if qa.findings and config.picks.suspect == "fail":
             first = qa.findings[0]
             raise BadInput(f"suspect pick {first['id']}: {first['problem']} ({len(qa.findings)} findings; "
                            "picks.suspect = 'fail')", config.inputs.picks, first["where"])
-        if qa.findings and config.picks.suspect == "drop":
+    if qa.findings and config.picks.suspect == "drop":
+        with stages("age model without suspect picks"):
             control = control.subset(~np.isin(control.source_index, qa.suspect_indices()) | (control.kind != 2))
-    with stages("age model"):
-        model = build_age_model(spec, comps, control, _engine_settings(config))
-        facts["age_model"] = {"compartments_with_control": len(model.compartments),
-                              "dropped_traces": model.dropped,
-                              "outlier_control_points": int(len(model.outliers))}
+            model = build_age_model(spec, comps, control, _engine_settings(config))
+    outliers = control.source_index[model.outliers]
+    facts["age_model"] = {"compartments_with_control": len(model.compartments), "dropped_traces": model.dropped,
+                          "outlier_control_points": int(len(model.outliers)),
+                          "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
     layers = age_layers(spec, comps, model)
     dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16,
               "compartment": np.int32}

@@ -38,23 +38,25 @@ class QAReport:
                 "suspect_picks": [{k: f[k] for k in ("id", "where", "kind", "problem")} for f in self.findings]}
 
 
-def _ridge_geometry(control, labels):
-    """Per compartment: ridge unit vectors and their along-ridge tangents."""
-    out = {}
-    ridge = control.kind == 0
-    xyz = control.xyz
-    for lab in np.unique(labels[ridge]):
-        pts = xyz[ridge & (labels == lab)]
-        if len(pts) < 2:
+def ridge_offsets(model, xyz: np.ndarray, label: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Across-strike distance (km) from the ridge and flank (+1/-1) of points, in the engine's frames."""
+    dist = np.full(len(xyz), np.nan)
+    side = np.zeros(len(xyz), int)
+    for lab, m in model.compartments.items():
+        ridge = np.flatnonzero((m.ages == 0) & (m.bounds == 0))
+        sel = np.flatnonzero(label == lab)
+        if not len(ridge) or not len(sel):
             continue
-        tangent = np.gradient(pts, axis=0)
-        tangent /= np.maximum(np.linalg.norm(tangent, axis=1, keepdims=True), 1e-15)
-        out[int(lab)] = (cKDTree(pts), pts, tangent)
-    return out
+        u, v = m.frame.uv(xyz[sel])
+        col = np.clip((u - m.u0) / m.du, 0, m.ncol - 1)
+        offset = v - np.interp(col, np.arange(m.ncol), m.V[ridge[0]])
+        dist[sel] = np.abs(offset) * R
+        side[sel] = np.sign(offset).astype(int)
+    return dist, side
 
 
-def check_picks(control, spec, compartments, settings) -> QAReport:
-    """Run every pick check; ``settings`` is the ``[picks]`` section."""
+def check_picks(control, spec, compartments, settings, model) -> QAReport:
+    """Run every pick check; ``settings`` is the ``[picks]`` section, ``model`` the fitted age model."""
     table = control.picks
     report = QAReport(checked=len(table))
     is_pick = control.kind == 2
@@ -70,23 +72,12 @@ def check_picks(control, spec, compartments, settings) -> QAReport:
     # duplicates: same boundary within duplicate_km
     tree = cKDTree(xyz)
     bounds = control.boundary[is_pick]
+    tracks = np.array(table.track, dtype=object)[idx]
     for i, j in sorted(tree.query_pairs(settings.duplicate_km / R)):
-        if bounds[i] == bounds[j]:
+        if bounds[i] == bounds[j] and (tracks[i] == tracks[j] or not tracks[i] or not tracks[j]):
             report.add(table, idx[j], "duplicate", f"duplicates pick {table.ids[idx[i]]} "
                        f"({table.where[idx[i]]}) within {settings.duplicate_km:g} km")
-    # distance from the ridge and side, per compartment
-    ridges = _ridge_geometry(control, compartments.assign(spec, control.lon, control.lat))
-    dist = np.full(len(lon), np.nan)
-    side = np.zeros(len(lon), int)
-    for lab, (rtree, pts, tangent) in ridges.items():
-        sel = np.flatnonzero(label == lab)
-        if not len(sel):
-            continue
-        d, k = rtree.query(xyz[sel])
-        normal = np.cross(pts[k], tangent[k])
-        side[sel] = np.sign(np.sum(xyz[sel] * normal, axis=1)).astype(int)
-        dist[sel] = d * R
-    tracks = np.array(table.track, dtype=object)[idx]
+    dist, side = ridge_offsets(model, xyz, label)
     tol_km = 3 * np.nanmedian(control.sigma_km[is_pick]) if is_pick.any() else 6.0
     for key in {(t, l, s) for t, l, s in zip(tracks, label, side) if t and l and s}:
         members = np.flatnonzero((tracks == key[0]) & (label == key[1]) & (side == key[2]) & np.isfinite(dist))
