@@ -395,8 +395,8 @@ def evaluate_compartment(m: CompartmentModel, xyz: np.ndarray, lon: np.ndarray, 
 
 def evaluate_block(model: AgeModel, labels: np.ndarray, domain: np.ndarray, lon: np.ndarray,
                    lat: np.ndarray) -> np.ndarray:
-    """All :data:`LAYERS` for one block of cells, stacked on a leading axis (float32)."""
-    out = np.full((len(LAYERS),) + labels.shape, np.nan, dtype=np.float32)
+    """All :data:`LAYERS` for one block of cells, stacked on a leading axis (float64)."""
+    out = np.full((len(LAYERS),) + labels.shape, np.nan, dtype=np.float64)
     out[LAYERS.index("age_flag")] = np.where(domain, FLAG_NO_CONTROL, FLAG_OUTSIDE)
     out[LAYERS.index("age_bracket_young")] = -1
     out[LAYERS.index("age_bracket_old")] = -1
@@ -424,6 +424,6 @@ def age_layers(spec, compartments, model: AgeModel) -> dict[str, da.Array]:
         lon, lat = spec.lonlat(slice(r0, r1), slice(c0, c1))
         return evaluate_block(model, lab, dom, lon, lat)
 
-    stacked = da.map_blocks(block, labels, domain, dtype=np.float32, new_axis=0,
+    stacked = da.map_blocks(block, labels, domain, dtype=np.float64, new_axis=0,
                             chunks=((len(LAYERS),),) + labels.chunks)
     return {name: stacked[i] for i, name in enumerate(LAYERS)}

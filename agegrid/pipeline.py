@@ -145,8 +145,8 @@ def compute_layers(config, inputs: dict, stages: Stages) -> tuple[dict, dict, di
                           "outlier_control_points": int(len(model.outliers)),
                           "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
     layers = age_layers(spec, comps, model)
-    dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16,
-              "compartment": np.int32}
+    dtypes = {"age": np.float64, "age_fraction": np.float64, "age_flag": np.int8, "age_bracket_young": np.int16,
+              "age_bracket_old": np.int16, "compartment": np.int32}
     layers = {k: v.astype(dtypes.get(k, np.float32)) for k, v in layers.items()}
     attrs = {name: attributes(name) for name in layers}
     attrs["age_flag"]["flag_values"] = np.array(attrs["age_flag"]["flag_values"], dtype=np.int8)

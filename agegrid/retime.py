@@ -42,8 +42,8 @@ def retime_dataset(ds: xr.Dataset, scale, source=None) -> tuple[xr.Dataset, list
     labels = ds["age_bracket_young"].attrs.get("boundary_labels", "").split()
     old_ages = np.asarray(ds["age_bracket_young"].attrs.get("boundary_ages_ma"), dtype=float)
     new_ages, warnings = boundary_ages(labels, scale, source)
-    young = ds["age_bracket_young"].values.astype(np.int64)
-    older = ds["age_bracket_old"].values.astype(np.int64)
+    young = ds["age_bracket_young"].fillna(-1).values.astype(np.int64)
+    older = ds["age_bracket_old"].fillna(-1).values.astype(np.int64)
     frac = ds["age_fraction"].values.astype(np.float64)
     valid = (young >= 0) & (older >= 0) & np.isfinite(frac)
     y, o = np.where(valid, young, 0), np.where(valid, older, 0)
@@ -53,7 +53,7 @@ def retime_dataset(ds: xr.Dataset, scale, source=None) -> tuple[xr.Dataset, list
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = np.where(span_old > 0, span_new / span_old, 1.0)
     out = ds[[v for v in KEPT if v in ds]].copy()
-    out["age"].values = age.astype(out["age"].dtype)
+    out["age"].values = age
     if "age_uncertainty" in out:
         out["age_uncertainty"].values = (ds["age_uncertainty"].values * ratio).astype(np.float32)
     if "half_rate" in out:

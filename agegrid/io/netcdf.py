@@ -10,6 +10,8 @@ import xarray as xr
 from agegrid.io.atomic import replace, staging_path
 
 CONVENTIONS = "CF-1.8"
+#: Encoding keys carried over from a variable read back from a file (the rest are reader details).
+KEPT_ENCODING = ("dtype", "_FillValue", "scale_factor", "add_offset", "zlib", "complevel", "shuffle", "chunksizes")
 
 
 def coordinates(spec) -> dict:
@@ -78,12 +80,13 @@ def encoding(ds: xr.Dataset, spec) -> dict:
     """Compression, on-disk chunks and fill values, merged with each variable's own encoding."""
     enc = {}
     for name, var in ds.variables.items():
-        own = dict(var.encoding)
+        own = {k: v for k, v in var.encoding.items() if k in KEPT_ENCODING}
         if name in ds.dims or name == "crs":
             own.update({"_FillValue": None})
         elif var.ndim == 2:
             chunks = tuple(min(c, s) for c, s in zip(spec.chunks, var.shape))
-            fill = np.nan if var.dtype.kind == "f" else (-1 if var.dtype.kind == "i" else 0)
+            kind = np.dtype(own.get("dtype", var.dtype)).kind
+            fill = np.nan if kind == "f" else (-1 if kind == "i" else 0)
             own.update({"zlib": True, "complevel": 4, "shuffle": True, "chunksizes": chunks, "_FillValue": fill})
             if name in ("lat", "lon"):
                 own["_FillValue"] = None
