@@ -41,6 +41,8 @@ log = logging.getLogger("agegrid")
 GROWTH_PER_KM = 0.02
 #: Extrapolated age span counted as 1-sigma uncertainty (fraction).
 EXTRAPOLATION_FRACTION = 0.25
+#: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
+MIN_COS_FROM_CENTRE = 0.17
 
 FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FAR = 1, 2, 3, 4, 5
 FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outside_domain "
@@ -81,11 +83,17 @@ class Frame:
         c /= np.linalg.norm(c)
         return cls(c, np.cross(n, c), n)
 
-    def uv(self, xyz: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Along-strike angle u and across-strike angle v (radians) of unit vectors."""
-        u = np.arctan2(xyz @ self.e_u, xyz @ self.c)
-        v = np.arcsin(np.clip(xyz @ self.n, -1.0, 1.0))
-        return u, v
+    def ws(self, xyz: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Along-strike gnomonic coordinate ``w = tan(u)`` and across-strike ``s = sin(v)`` of unit vectors.
+
+        Both are trigonometry-free (dot products), monotone in the along- and across-strike angles,
+        and exact great-circle quantities: ``asin(s)`` is the angular distance from the strike circle.
+        Points 80 degrees or more from the frame's centre get NaN.
+        """
+        xc = xyz @ self.c
+        with np.errstate(invalid="ignore", divide="ignore"):
+            w = np.where(xc > MIN_COS_FROM_CENTRE, (xyz @ self.e_u) / xc, np.nan)
+        return w, xyz @ self.n
 
 
 @dataclass
@@ -161,18 +169,21 @@ def _consistent(col: np.ndarray, offset: np.ndarray, sigma_km: np.ndarray) -> np
     """Which control points of one trace agree with a robust line through the rest.
 
     ``offset`` is each point's across-strike position relative to the next younger trace (radians);
-    along one isochron it varies slowly, so a Theil-Sen line through it, with a tolerance of three
+    along one isochron it varies slowly, so a Theil-Sen line (Sen 1968) through it, with a tolerance of three
     pick sigmas or four robust standard deviations, separates points that belong to another
     isochron (a pick moved across a fracture zone, a mis-identified anomaly).
     """
     keep = np.ones(len(col), bool)
     if len(col) < 3 or np.ptp(col) == 0:
         return keep
-    from scipy.stats import theilslopes
-
-    slope, intercept, _, _ = theilslopes(offset, col)
-    resid = offset - (intercept + slope * col)
-    mad = 1.4826 * np.median(np.abs(resid - np.median(resid)))
+    fit = np.linspace(0, len(col) - 1, min(len(col), 150)).astype(int)  # Theil-Sen is O(n^2) in pairs
+    i, j = np.triu_indices(len(fit), 1)
+    dx = col[fit][j] - col[fit][i]
+    ok = dx != 0
+    slope = np.median((offset[fit][j] - offset[fit][i])[ok] / dx[ok])  # Sen (1968): median pairwise slope
+    resid = offset - slope * col
+    resid -= np.median(resid)
+    mad = 1.4826 * np.median(np.abs(resid))
     tol = max(3 * np.median(sigma_km) / sphere.EARTH_RADIUS_KM, 4 * mad)
     return np.abs(resid) <= tol
 
@@ -195,11 +206,17 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
         frame = Frame.fit(xyz[max(groups, key=len)])
     if frame is None:
         return None
-    u, v = frame.uv(xyz)
+    u, v = frame.ws(xyz)
+    if not np.isfinite(u).all():
+        keep_pts = np.isfinite(u)
+        u, v, age, bound, kind, sigma = u[keep_pts], v[keep_pts], age[keep_pts], bound[keep_pts], kind[keep_pts], sigma[keep_pts]
+        ridge = kind == 0
     ext_u = [u.min(), u.max()]
     if extent is not None:
-        eu, _ = frame.uv(extent)
-        ext_u = [min(ext_u[0], eu.min()), max(ext_u[1], eu.max())]
+        eu, _ = frame.ws(extent)
+        eu = eu[np.isfinite(eu)]
+        if len(eu):
+            ext_u = [min(ext_u[0], eu.min()), max(ext_u[1], eu.max())]
     du = spacing_rad
     u0 = ext_u[0] - 2 * du
     ncol = int(np.ceil((ext_u[1] + 2 * du - u0) / du)) + 1
@@ -271,7 +288,7 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
         bounds=np.array([tr[2] for tr in ordered], dtype=np.int32))
 
 
-def _extent_samples(spec, compartments, target: int = 400_000) -> dict[int, np.ndarray]:
+def _extent_samples(spec, compartments, target: int = 100_000) -> dict[int, np.ndarray]:
     """Unit vectors of a decimated sample of each compartment's cells, to size its ``u`` axis."""
     ny, nx = spec.shape
     step = max(1, int(np.sqrt(ny * nx / target)))
@@ -320,97 +337,83 @@ def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel
 
 
 # --- the kernel --------------------------------------------------------------------------------------
-def _at(V: np.ndarray, k: np.ndarray, j: np.ndarray, w: np.ndarray) -> np.ndarray:
-    return V[k, j] * (1 - w) + V[k, j + 1] * w
+@dataclass
+class PackedModel:
+    """The compartment models packed into flat arrays indexed by compartment label, for the kernel."""
+
+    has: np.ndarray
+    frames: np.ndarray
+    w0: np.ndarray
+    dw: np.ndarray
+    ncol: np.ndarray
+    ntrace: np.ndarray
+    voff: np.ndarray
+    toff: np.ndarray
+    V: np.ndarray
+    D: np.ndarray
+    ages: np.ndarray
+    bounds: np.ndarray
+    sigma: np.ndarray
+
+    @classmethod
+    def pack(cls, model: AgeModel) -> "PackedModel":
+        n = max(model.compartments, default=0) + 1
+        has = np.zeros(n, np.bool_)
+        frames = np.zeros((n, 3, 3))
+        w0, dw = np.zeros(n), np.ones(n)
+        ncol, ntrace, voff, toff = (np.zeros(n, np.int64) for _ in range(4))
+        V, D, ages, bounds, sigma = [], [], [], [], []
+        v_at, t_at = 0, 0
+        for label, m in sorted(model.compartments.items()):
+            has[label] = True
+            frames[label] = np.stack([m.frame.c, m.frame.e_u, m.frame.n])
+            w0[label], dw[label], ncol[label], ntrace[label] = m.u0, m.du, m.ncol, len(m.ages)
+            voff[label], toff[label] = v_at, t_at
+            V.append(m.V.ravel())
+            D.append(m.D.ravel())
+            ages.append(m.ages)
+            bounds.append(m.bounds)
+            sigma.append(m.sigma)
+            v_at += m.V.size
+            t_at += len(m.ages)
+
+        def join(parts, dtype):
+            return np.concatenate(parts).astype(dtype) if parts else np.zeros(1, dtype)
+
+        return cls(has, frames, w0, dw, ncol, ntrace, voff, toff, join(V, np.float64), join(D, np.float64),
+                   join(ages, np.float64), join(bounds, np.float64), join(sigma, np.float64))
 
 
-def evaluate_compartment(m: CompartmentModel, xyz: np.ndarray, lon: np.ndarray, lat: np.ndarray,
-                         settings: Settings) -> dict[str, np.ndarray]:
-    """Age, uncertainty, brackets, rate and azimuth at unit vectors of one compartment."""
-    u, v = m.frame.uv(xyz)
-    K = m.V.shape[0]
-    colf = np.clip((u - m.u0) / m.du, 0, m.ncol - 1)
-    j = np.minimum(colf.astype(np.int64), m.ncol - 2)
-    w = colf - j
-    lo, hi = np.zeros(len(v), np.int64), np.full(len(v), K, np.int64)
-    for _ in range(int(np.ceil(np.log2(K + 1))) + 1):
-        active = lo < hi
-        mid = np.minimum((lo + hi) // 2, K - 1)
-        below = _at(m.V, mid, j, w) <= v
-        lo = np.where(active & below, mid + 1, lo)
-        hi = np.where(active & ~below, mid, hi)
-    a = np.clip(lo - 1, 0, K - 2)
-    b = a + 1
-    va, vb = _at(m.V, a, j, w), _at(m.V, b, j, w)
-    gap = vb - va
-    with np.errstate(invalid="ignore", divide="ignore"):
-        f = np.where(gap > 0, (v - va) / np.where(gap > 0, gap, 1), 0.0)
-    ta, tb = m.ages[a], m.ages[b]
-    age = ta + f * (tb - ta)
-    mirror = age < 0
-    # brackets as (younger, older) with the fraction measured from the younger
-    young_first = ta <= tb
-    fy = np.where(young_first, f, 1 - f)
-    young = np.where(young_first, m.bounds[a], m.bounds[b])
-    old = np.where(young_first, m.bounds[b], m.bounds[a])
-    fy = np.where(mirror, -fy, fy)  # the mirrored age is -(t_y + f_y (t_o - t_y)) with t_y = 0
-    age = np.abs(age)
-    extrapolated = (f < 0) | (f > 1) | mirror
-    t_end = np.where(f < 0, ta, np.where(f > 1, tb, age))
-    span = np.where(extrapolated, np.abs(age - t_end), 0.0)
-    too_far = span > settings.max_extrapolation_myr
-    # rate and direction from the bracketing pair
-    fc = np.clip(f, 0, 1)
-    slope = ((1 - fc) * (m.V[a, j + 1] - m.V[a, j]) + fc * (m.V[b, j + 1] - m.V[b, j])) / m.du
-    cos_v = np.cos(v)
-    tilt = slope / cos_v
-    dt = np.abs(tb - ta)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rate = np.where((gap > 0) & (dt > 0), gap * sphere.EARTH_RADIUS_KM / np.sqrt(1 + tilt**2) / dt, np.nan)
-    n = m.frame.n
-    e_v = n[None, :] - (xyz @ n)[:, None] * xyz
-    e_v /= np.linalg.norm(e_v, axis=1, keepdims=True)
-    e_u = np.cross(n[None, :], xyz)
-    e_u /= np.linalg.norm(e_u, axis=1, keepdims=True)
-    normal = (e_v - e_u * tilt[:, None]) * np.where(tb > ta, 1.0, -1.0)[:, None]
-    normal = np.where(mirror[:, None], -normal, normal)
-    lam, phi = np.radians(lon), np.radians(lat)
-    east_c = -np.sin(lam) * normal[:, 0] + np.cos(lam) * normal[:, 1]
-    north_c = (-np.sin(phi) * np.cos(lam) * normal[:, 0] - np.sin(phi) * np.sin(lam) * normal[:, 1]
-               + np.cos(phi) * normal[:, 2])
-    azimuth = np.degrees(np.arctan2(east_c, north_c)) % 360
-    sig_a = np.hypot(m.sigma[a], GROWTH_PER_KM * _at(m.D, a, j, w))
-    sig_b = np.hypot(m.sigma[b], GROWTH_PER_KM * _at(m.D, b, j, w))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pos = np.hypot((1 - fc) * sig_a, fc * sig_b) / rate
-    sigma = np.sqrt(pos**2 + (settings.timescale_sigma_percent / 100 * age) ** 2
-                    + (EXTRAPOLATION_FRACTION * span) ** 2)
-    flag = np.where(too_far, FLAG_TOO_FAR, np.where(extrapolated, FLAG_EXTRAPOLATED, FLAG_INTERPOLATED))
-    nan = too_far
-    return {"age": np.where(nan, np.nan, age), "age_uncertainty": np.where(nan, np.nan, sigma), "age_flag": flag,
-            "age_bracket_young": np.where(nan, -1, young), "age_bracket_old": np.where(nan, -1, old),
-            "age_fraction": np.where(nan, np.nan, fy), "half_rate": np.where(nan, np.nan, rate),
-            "spreading_azimuth": np.where(nan, np.nan, azimuth)}
+FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FAR], np.float64)
 
 
-def evaluate_block(model: AgeModel, labels: np.ndarray, domain: np.ndarray, lon: np.ndarray,
-                   lat: np.ndarray) -> np.ndarray:
-    """All :data:`LAYERS` for one block of cells, stacked on a leading axis (float64)."""
-    out = np.full((len(LAYERS),) + labels.shape, np.nan, dtype=np.float64)
-    out[LAYERS.index("age_flag")] = np.where(domain, FLAG_NO_CONTROL, FLAG_OUTSIDE)
-    out[LAYERS.index("age_bracket_young")] = -1
-    out[LAYERS.index("age_bracket_old")] = -1
-    out[LAYERS.index("compartment")] = labels
-    for label in np.unique(labels):
-        m = model.compartments.get(int(label))
-        if m is None:
-            continue
-        sel = labels == label
-        lo, la = lon[sel], lat[sel]
-        result = evaluate_compartment(m, sphere.to_xyz(lo, la), lo, la, model.settings)
-        for name, values in result.items():
-            out[LAYERS.index(name)][sel] = values
+def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, domain: np.ndarray,
+                   xyz: tuple[np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
+    """All :data:`LAYERS` for one block of cells, stacked on axis 0; ``xyz`` holds three 2-D arrays."""
+    from agegrid.age_kernel import evaluate
+
+    out = np.empty((len(LAYERS),) + labels.shape, dtype=np.float64)
+    p = packed
+    x, y, z = (np.ascontiguousarray(c, dtype=np.float64) for c in xyz)
+    evaluate(x, y, z, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
+             p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.V, p.D, p.ages, p.bounds, p.sigma,
+             float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
+             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, out)
     return out
+
+
+def block_xyz(spec, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Unit-vector components of a window's cell centres (separable trigonometry on a geographic grid)."""
+    if spec.geographic:
+        lam, phi = np.radians(spec.x[cols]), np.radians(spec.y[rows])
+        cos_phi = np.cos(phi)[:, None]
+        x = cos_phi * np.cos(lam)[None, :]
+        y = cos_phi * np.sin(lam)[None, :]
+        z = np.repeat(np.sin(phi)[:, None], len(lam), axis=1)
+        return x, y, z
+    lon, lat = spec.lonlat(rows, cols)
+    xyz = sphere.to_xyz(lon, lat)
+    return xyz[..., 0], xyz[..., 1], xyz[..., 2]
 
 
 def age_layers(spec, compartments, model: AgeModel) -> dict[str, da.Array]:
@@ -418,11 +421,12 @@ def age_layers(spec, compartments, model: AgeModel) -> dict[str, da.Array]:
     chunks = spec.chunks
     labels = da.from_array(compartments.labels, chunks=chunks)
     domain = da.from_array(compartments.domain, chunks=chunks)
+    packed = PackedModel.pack(model)
+    settings = model.settings
 
     def block(lab, dom, block_info=None):
         (r0, r1), (c0, c1) = block_info[0]["array-location"]
-        lon, lat = spec.lonlat(slice(r0, r1), slice(c0, c1))
-        return evaluate_block(model, lab, dom, lon, lat)
+        return evaluate_block(packed, settings, lab, dom, block_xyz(spec, slice(r0, r1), slice(c0, c1)))
 
     stacked = da.map_blocks(block, labels, domain, dtype=np.float64, new_axis=0,
                             chunks=((len(LAYERS),),) + labels.chunks)

@@ -8,7 +8,7 @@ neighbouring compartment on their own side of the line (a segment test against t
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import shapely
@@ -26,6 +26,7 @@ class Compartments:
     barrier: np.ndarray
     domain: np.ndarray
     barrier_paths: list[np.ndarray]
+    _segment_cache: tuple | None = field(default=None, repr=False)
 
     def assign(self, spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
         """Compartment of each geographic point; 0 off the grid or outside the domain."""
@@ -36,39 +37,54 @@ class Compartments:
             x, y = spec.project(lon[on_barrier], lat[on_barrier])
             fx = (x - spec.region[0]) / spec.spacing - 0.5
             fy = (spec.region[3] - y) / spec.spacing - 0.5
-            label[on_barrier] = self._side_labels(fx, fy, self._free_labels())
+            label[on_barrier] = self._side_labels(fx, fy)
         return label
 
-    def _free_labels(self) -> np.ndarray:
-        return np.where(self.barrier, 0, self.labels)
 
-    def _side_labels(self, fx: np.ndarray, fy: np.ndarray, free: np.ndarray, radius: int = 3) -> np.ndarray:
-        """Label of the nearest free cell reachable from each point (column fx, row fy) without crossing."""
-        ny, nx = free.shape
+    def _side_labels(self, fx: np.ndarray, fy: np.ndarray, radius: int = 3) -> np.ndarray:
+        """Label of the nearest free cell on the same side of the nearest barrier segment as each point.
+
+        Points are given in fractional (column ``fx``, row ``fy``) cell coordinates; the side of a point
+        is the sign of the cross product of its nearest barrier segment's direction with the vector
+        from the segment to the point.
+        """
+        ny, nx = self.labels.shape
         offsets = np.array([(dr, dc) for dr in range(-radius, radius + 1) for dc in range(-radius, radius + 1)
                             if (dr, dc) != (0, 0)])
         offsets = offsets[np.argsort(np.hypot(*offsets.T), kind="stable")]
+        start, direction, tree = self._segments()
+        q = np.stack([fx, fy], -1)
+        _, seg = tree.query(q)
+        a, d = start[seg], direction[seg]
+        side = np.sign(d[:, 0] * (q[:, 1] - a[:, 1]) - d[:, 1] * (q[:, 0] - a[:, 0]))
         r0, c0 = np.rint(fy).astype(int), np.rint(fx).astype(int)
-        rr = np.clip(r0[:, None] + offsets[None, :, 0], 0, ny - 1)
-        cc = np.clip(c0[:, None] + offsets[None, :, 1], 0, nx - 1)
-        cand = free[rr, cc]
-        barrier = shapely.MultiLineString([p for p in self.barrier_paths if len(p) > 1])
-        shapely.prepare(barrier)
         result = np.zeros(len(fx), dtype=self.labels.dtype)
         todo = np.ones(len(fx), bool)
-        for k in range(offsets.shape[0]):
-            ok = todo & (cand[:, k] > 0)
-            if not ok.any():
-                continue
-            idx = np.flatnonzero(ok)
-            segs = shapely.linestrings(np.stack([np.stack([fx[idx], fy[idx]], -1),
-                                                 np.stack([cc[idx, k], rr[idx, k]], -1).astype(float)], 1))
-            clear = ~shapely.crosses(segs, barrier)
-            result[idx[clear]] = cand[idx[clear], k]
-            todo[idx[clear]] = False
+        for dr, dc in offsets:
+            rr, cc = np.clip(r0 + dr, 0, ny - 1), np.clip(c0 + dc, 0, nx - 1)
+            cand = np.where(self.barrier[rr, cc], 0, self.labels[rr, cc])
+            cside = np.sign(d[:, 0] * (rr - a[:, 1]) - d[:, 1] * (cc - a[:, 0]))
+            ok = todo & (cand > 0) & ((cside == side) | (side == 0))
+            result[ok] = cand[ok]
+            todo &= ~ok
             if not todo.any():
                 break
         return result
+
+    def _segments(self):
+        """Start points and directions of every barrier path segment, with a KD-tree on their midpoints."""
+        if self._segment_cache is None:
+            from scipy.spatial import cKDTree
+
+            starts, dirs = [], []
+            for path in self.barrier_paths:
+                if len(path) > 1:
+                    starts.append(path[:-1])
+                    dirs.append(np.diff(path, axis=0))
+            start = np.concatenate(starts) if starts else np.zeros((1, 2))
+            direction = np.concatenate(dirs) if dirs else np.ones((1, 2))
+            self._segment_cache = (start, direction, cKDTree(start + direction / 2))
+        return self._segment_cache
 
 
 def _index_path(spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
@@ -79,12 +95,13 @@ def _index_path(spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
         lon_c = np.unwrap(np.radians(lon))
         pts[:, 0] = (np.degrees(lon_c) - np.degrees(lon_c[0]) + spec.wrap_lon(lon[:1])[0] - spec.region[0]) \
             / spec.spacing - 0.5
-    steps = np.maximum(1, np.ceil(2.5 * np.abs(np.diff(pts, axis=0)).max(axis=1, initial=0)).astype(int))
-    pieces = [pts[:1]]
-    for a, b, n in zip(pts[:-1], pts[1:], steps):
-        t = np.arange(1, n + 1)[:, None] / n
-        pieces.append(a + t * (b - a))
-    return np.concatenate(pieces)
+    if len(pts) < 2:
+        return pts
+    steps = np.maximum(1, np.ceil(2.5 * np.abs(np.diff(pts, axis=0)).max(axis=1)).astype(int))
+    start = np.repeat(np.arange(len(steps)), steps)
+    frac = (np.arange(steps.sum()) - np.repeat(np.cumsum(steps) - steps, steps) + 1) / np.repeat(steps, steps)
+    dense = pts[start] + frac[:, None] * (pts[start + 1] - pts[start])
+    return np.concatenate([pts[:1], dense])
 
 
 def _extension(xyz: np.ndarray, length_rad: float, step_rad: float) -> np.ndarray:
@@ -100,8 +117,9 @@ def _extension(xyz: np.ndarray, length_rad: float, step_rad: float) -> np.ndarra
     return np.cos(t)[:, None] * b + np.sin(t)[:, None] * tangent
 
 
-def _mark(mask: np.ndarray, path: np.ndarray, stop: np.ndarray | None = None, skip: int = 0) -> np.ndarray:
-    """Mark the cells of a fractional-index path; with ``stop``, end at the first stop cell after ``skip``."""
+def _mark(mask: np.ndarray, path: np.ndarray, value, stop: np.ndarray | None = None, skip: int = 0) -> np.ndarray:
+    """Set the cells of a fractional-index path to ``value``; with ``stop``, end at the first stop cell
+    after ``skip`` points, or where the path leaves the grid. Returns the part of the path marked."""
     ny, nx = mask.shape
     r, c = np.rint(path[:, 1]).astype(int), np.rint(path[:, 0]).astype(int)
     inside = (r >= 0) & (r < ny) & (c >= 0) & (c < nx)
@@ -112,7 +130,7 @@ def _mark(mask: np.ndarray, path: np.ndarray, stop: np.ndarray | None = None, sk
         if len(first_out):
             end = min(end, skip + first_out[0])
         r, c, inside, path = r[:end], c[:end], inside[:end], path[:end]
-    mask[r[inside], c[inside]] = True
+    mask[r[inside], c[inside]] = value
     return path
 
 
@@ -153,33 +171,29 @@ def build_compartments(spec, barriers: list[np.ndarray], domain_polygon=None, ex
     domain = rasterise_domain(spec, domain_polygon)
     step = np.radians(spec.spacing) if spec.geographic else spec.spacing / (sphere.EARTH_RADIUS_KM * 1e3)
     step /= 2
-    barrier = np.zeros(spec.shape, bool)
+    owner = np.zeros(spec.shape, np.int32)  # which barrier line marked each cell (1-based)
     paths = []
-    for line in barriers:
+    for number, line in enumerate(barriers, 1):
         xyz = sphere.densify(sphere.to_xyz(line[:, 0], line[:, 1]), step)
         lon, lat = sphere.to_lonlat(xyz)
         path = _index_path(spec, lon, lat)
-        _mark(barrier, path)
-        paths.append((xyz, path))
-    final = barrier.copy()
+        _mark(owner, path, number)
+        paths.append((number, xyz, path))
+    final = owner > 0
     result_paths = []
     length = np.pi / 2
-    for xyz, path in paths:
-        pieces = [path]
-        if extend and len(xyz) >= 2:
-            for ends in (xyz, xyz[::-1]):
-                ext = _extension(ends, length, step)
-                if not len(ext):
-                    continue
-                lon, lat = sphere.to_lonlat(np.concatenate([ends[-1:], ext]))
-                ext_path = _index_path(spec, lon, lat)
-                own = np.zeros(spec.shape, bool)
-                _mark(own, path)
-                grown = ndimage.binary_dilation(own, iterations=2)
-                stop = barrier & ~grown
-                ext_path = _mark(final, ext_path, stop=stop, skip=1)
-                pieces.append(ext_path)
-        result_paths.extend(pieces)
+    for number, xyz, path in paths:
+        result_paths.append(path)
+        if not (extend and len(xyz) >= 2):
+            continue
+        for ends in (xyz, xyz[::-1]):
+            ext = _extension(ends, length, step)
+            if not len(ext):
+                continue
+            lon, lat = sphere.to_lonlat(np.concatenate([ends[-1:], ext]))
+            ext_path = _index_path(spec, lon, lat)
+            stop = (owner > 0) & (owner != number)
+            result_paths.append(_mark(final, ext_path, True, stop=stop, skip=1))
     free = domain & ~final
     labels, count = ndimage.label(free, structure=ndimage.generate_binary_structure(2, 1))
     if spec.is_global:
@@ -187,7 +201,7 @@ def build_compartments(spec, barriers: list[np.ndarray], domain_polygon=None, ex
     comp = Compartments(labels.astype(np.int32), int(count), final & domain, domain, result_paths)
     rows, cols = np.nonzero(comp.barrier)
     if len(rows):
-        comp.labels[rows, cols] = comp._side_labels(cols.astype(float), rows.astype(float), comp._free_labels())
+        comp.labels[rows, cols] = comp._side_labels(cols.astype(float), rows.astype(float))
     return comp
 
 

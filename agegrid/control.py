@@ -30,12 +30,14 @@ class Boundaries:
 
     labels: list[str] = field(default_factory=lambda: [RIDGE_LABEL])
     ages: list[float] = field(default_factory=lambda: [0.0])
+    _where: dict = field(default_factory=lambda: {RIDGE_LABEL: 0}, repr=False)
 
     def index(self, label: str, age: float) -> int:
-        if label not in self.labels:
+        if label not in self._where:
+            self._where[label] = len(self.labels)
             self.labels.append(label)
             self.ages.append(float(age))
-        return self.labels.index(label)
+        return self._where[label]
 
     @property
     def chron_based(self) -> bool:
@@ -82,15 +84,18 @@ def date_picks(table: PickTable, timescale) -> tuple[np.ndarray, list[str]]:
     BadInput
         A chron that is malformed or absent from the timescale, naming file, line and label.
     """
-    ages, labels = np.empty(len(table)), []
+    ages, labels, known = np.empty(len(table)), [], {}
     for i, (chron, edge, age) in enumerate(zip(table.chron, table.edge, table.age)):
         if chron:
-            try:
-                canonical = timescale.resolve(chron)
-                ages[i] = timescale.boundary(canonical, edge)
-            except KeyError as exc:
-                raise BadInput(str(exc.args[0]), table.path, table.where[i]) from None
-            labels.append(boundary_label(canonical, edge, ages[i]))
+            if (chron, edge) not in known:
+                try:
+                    canonical = timescale.resolve(chron)
+                    value = timescale.boundary(canonical, edge)
+                except KeyError as exc:
+                    raise BadInput(str(exc.args[0]), table.path, table.where[i]) from None
+                known[chron, edge] = (value, boundary_label(canonical, edge, value))
+            ages[i] = known[chron, edge][0]
+            labels.append(known[chron, edge][1])
         else:
             ages[i] = age
             labels.append(boundary_label(None, edge, age) if age > 0 else RIDGE_LABEL)

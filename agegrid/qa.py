@@ -47,10 +47,10 @@ def ridge_offsets(model, xyz: np.ndarray, label: np.ndarray) -> tuple[np.ndarray
         sel = np.flatnonzero(label == lab)
         if not len(ridge) or not len(sel):
             continue
-        u, v = m.frame.uv(xyz[sel])
-        col = np.clip((u - m.u0) / m.du, 0, m.ncol - 1)
-        offset = v - np.interp(col, np.arange(m.ncol), m.V[ridge[0]])
-        dist[sel] = np.abs(offset) * R
+        w, s = m.frame.ws(xyz[sel])
+        col = np.clip(np.nan_to_num((w - m.u0) / m.du), 0, m.ncol - 1)
+        offset = s - np.interp(col, np.arange(m.ncol), m.V[ridge[0]])
+        dist[sel] = np.abs(offset) / np.sqrt(np.maximum(1 - s**2, 1e-12)) * R
         side[sel] = np.sign(offset).astype(int)
     return dist, side
 

@@ -44,14 +44,14 @@ def densify(xyz: np.ndarray, step_rad: float) -> np.ndarray:
     xyz = np.asarray(xyz, dtype=float)
     if len(xyz) < 2:
         return xyz.copy()
-    pieces = [xyz[:1]]
-    for a, b in zip(xyz[:-1], xyz[1:]):
-        theta = float(angle(a, b))
-        n = max(1, int(np.ceil(theta / step_rad)))
-        t = np.arange(1, n + 1)[:, None] / n
-        if theta < 1e-12:
-            pieces.append(np.repeat(b[None], n, axis=0))
-            continue
-        s = np.sin(theta)
-        pieces.append((np.sin((1 - t) * theta) * a + np.sin(t * theta) * b) / s)
-    return np.concatenate(pieces)
+    a, b = xyz[:-1], xyz[1:]
+    theta = angle(a, b)
+    n = np.maximum(1, np.ceil(theta / step_rad)).astype(int)
+    seg = np.repeat(np.arange(len(n)), n)
+    t = ((np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n) + 1) / np.repeat(n, n))[:, None]
+    th = theta[seg][:, None]
+    small = th < 1e-12
+    safe = np.where(small, 1.0, th)
+    wa = np.where(small, 1 - t, np.sin((1 - t) * safe) / np.sin(safe))
+    wb = np.where(small, t, np.sin(t * safe) / np.sin(safe))
+    return np.concatenate([xyz[:1], wa * a[seg] + wb * b[seg]])

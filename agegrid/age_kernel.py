@@ -1,0 +1,137 @@
+"""The age engine's cell kernel, compiled with numba: one pass per cell, parallel over rows.
+
+For each cell: its compartment's frame coordinates (w, s), the column of the trace table, a binary
+search for the two traces that bracket s, and from that pair the age, its uncertainty, the brackets and
+fraction kept for retiming, the half-rate and the spreading azimuth (see :mod:`agegrid.age`).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+from agegrid.sphere import EARTH_RADIUS_KM
+
+N_LAYERS = 9
+(AGE, SIGMA, FLAG, YOUNG, OLD, FRACTION, RATE, AZIMUTH, COMPARTMENT) = range(N_LAYERS)
+
+
+@njit(parallel=True, cache=True, fastmath=False)
+def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, V, D, ages, bounds, sigma,
+             max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, out):
+    """Fill ``out`` (N_LAYERS, ny, nx) for unit vectors (x, y, z) of a block of cells.
+
+    ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far).
+    """
+    ny, nx = labels.shape
+    nan = np.nan
+    for i in prange(ny):
+        for jj in range(nx):
+            lab = labels[i, jj]
+            out[COMPARTMENT, i, jj] = lab
+            out[YOUNG, i, jj] = -1.0
+            out[OLD, i, jj] = -1.0
+            for layer in (AGE, SIGMA, FRACTION, RATE, AZIMUTH):
+                out[layer, i, jj] = nan
+            if not domain[i, jj]:
+                out[FLAG, i, jj] = flags[2]
+                continue
+            out[FLAG, i, jj] = flags[3]
+            if lab <= 0 or lab >= has.shape[0] or not has[lab]:
+                continue
+            px, py, pz = x[i, jj], y[i, jj], z[i, jj]
+            f0 = frames[lab]
+            xc = px * f0[0, 0] + py * f0[0, 1] + pz * f0[0, 2]
+            if xc <= 0.17:
+                continue
+            xe = px * f0[1, 0] + py * f0[1, 1] + pz * f0[1, 2]
+            s = px * f0[2, 0] + py * f0[2, 1] + pz * f0[2, 2]
+            w = xe / xc
+            nc = ncol[lab]
+            colf = (w - w0[lab]) / dw[lab]
+            if colf < 0.0:
+                colf = 0.0
+            if colf > nc - 1:
+                colf = nc - 1.0
+            j0 = int(colf)
+            if j0 > nc - 2:
+                j0 = nc - 2
+            t = colf - j0
+            K = ntrace[lab]
+            vo = voff[lab]
+            to = toff[lab]
+            lo = 0
+            hi = K
+            while lo < hi:
+                mid = (lo + hi) // 2
+                vm = V[vo + mid * nc + j0] * (1.0 - t) + V[vo + mid * nc + j0 + 1] * t
+                if vm <= s:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            a = lo - 1
+            if a < 0:
+                a = 0
+            if a > K - 2:
+                a = K - 2
+            b = a + 1
+            ia, ib = vo + a * nc + j0, vo + b * nc + j0
+            va = V[ia] * (1.0 - t) + V[ia + 1] * t
+            vb = V[ib] * (1.0 - t) + V[ib + 1] * t
+            gap = vb - va
+            f = (s - va) / gap if gap > 0 else 0.0
+            ta, tb = ages[to + a], ages[to + b]
+            age = ta + f * (tb - ta)
+            mirror = age < 0.0
+            young_first = ta <= tb
+            fy = f if young_first else 1.0 - f
+            if mirror:
+                fy = -fy
+                age = -age
+            extrapolated = f < 0.0 or f > 1.0 or mirror
+            span = 0.0
+            if extrapolated:
+                t_end = ta if f < 0.0 else tb
+                span = abs(age - t_end)
+            if span > max_extrapolation:
+                out[FLAG, i, jj] = flags[4]
+                continue
+            out[FLAG, i, jj] = flags[1] if extrapolated else flags[0]
+            out[AGE, i, jj] = age
+            out[FRACTION, i, jj] = fy
+            out[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
+            out[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
+            # rate and direction from the bracketing pair
+            fc = min(max(f, 0.0), 1.0)
+            slope = ((1.0 - fc) * (V[ia + 1] - V[ia]) + fc * (V[ib + 1] - V[ib])) / dw[lab]
+            cos2 = max(1.0 - s * s, 1e-12)
+            tilt = slope * (1.0 + w * w) / cos2
+            dt = abs(tb - ta)
+            rate = nan
+            if gap > 0 and dt > 0:
+                rate = gap / math.sqrt(cos2) * EARTH_RADIUS_KM / math.sqrt(1.0 + tilt * tilt) / dt
+            out[RATE, i, jj] = rate
+            nx_, ny_, nz_ = f0[2, 0], f0[2, 1], f0[2, 2]
+            evx, evy, evz = nx_ - s * px, ny_ - s * py, nz_ - s * pz
+            nev = math.sqrt(evx * evx + evy * evy + evz * evz)
+            eux, euy, euz = ny_ * pz - nz_ * py, nz_ * px - nx_ * pz, nx_ * py - ny_ * px
+            neu = math.sqrt(eux * eux + euy * euy + euz * euz)
+            sign = 1.0 if tb > ta else -1.0
+            if mirror:
+                sign = -sign
+            gx = sign * (evx / nev - tilt * eux / neu)
+            gy = sign * (evy / nev - tilt * euy / neu)
+            gz = sign * (evz / nev - tilt * euz / neu)
+            east = -py * gx + px * gy
+            north = -pz * px * gx - pz * py * gy + (px * px + py * py) * gz
+            az = math.degrees(math.atan2(east, north))
+            out[AZIMUTH, i, jj] = az + 360.0 if az < 0 else az
+            # uncertainty
+            da = D[ia] * (1.0 - t) + D[ia + 1] * t
+            db = D[ib] * (1.0 - t) + D[ib + 1] * t
+            sa2 = sigma[to + a] ** 2 + (growth * da) ** 2
+            sb2 = sigma[to + b] ** 2 + (growth * db) ** 2
+            position = math.sqrt((1.0 - fc) ** 2 * sa2 + fc * fc * sb2) / rate if rate > 0 else nan
+            out[SIGMA, i, jj] = math.sqrt(position ** 2 + (timescale_fraction * age) ** 2
+                                          + (extrapolation_fraction * span) ** 2)
