@@ -1,0 +1,180 @@
+"""Benchmarks: the age stage and whole builds against scipy's linear griddata, measured in the same run.
+
+For each grid size: a synthetic basin (agegrid.synthetic, exactly known ages), 60 survey tracks of picks;
+the age stage (control, compartments, trace model, kernel) timed in process, `repeats` times, median;
+scipy.interpolate.griddata (linear) from the same picks and ridge points onto the same cells, timed the
+same way; accuracy of both against the true ages (all cells and cells within 0.5 degrees of a fracture
+zone); then whole builds (`agegrid build`, three cooling models, bathymetry, NetCDF and a COG per layer)
+in a fresh process each, with per-stage timings from the manifest and the process's peak memory.
+
+    python bench/run_bench.py [--sizes 0.1,0.025] [--repeats 5] [--builds 3] [--large]
+
+Results are printed and written to bench/results/bench-<time>.json. The machine is noisy: read the
+ratios and medians, not single timings.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from agegrid import thermal, timescale  # noqa: E402
+from agegrid.age import Settings, age_layers, build_age_model  # noqa: E402
+from agegrid.compartments import build_compartments  # noqa: E402
+from agegrid.control import build_control  # noqa: E402
+from agegrid.grid import GridSpec  # noqa: E402
+from agegrid.io.points import read_picks  # noqa: E402
+from agegrid.io.vectors import LineFeature  # noqa: E402
+from agegrid.synthetic import SyntheticBasin  # noqa: E402
+from tests.helpers import basin_build, write_picks  # noqa: E402
+
+
+def score(error: np.ndarray, mask: np.ndarray | None = None) -> dict:
+    e = error if mask is None else np.where(mask, error, np.nan)
+    e = np.abs(e[np.isfinite(e)])
+    if not e.size:
+        return {"rms": None, "p95": None}
+    return {"rms": round(float(np.sqrt(np.mean(e**2))), 4), "p95": round(float(np.percentile(e, 95)), 4)}
+
+
+def age_stage(spec, basin, picks, scale):
+    """The whole age stage in process; returns the age grid."""
+    import dask
+
+    comps = build_compartments(spec, basin.fracture_zones(), basin.domain_polygon())
+    ridges = [LineFeature(i, r, {}) for i, r in enumerate(basin.ridges())]
+    step = np.radians(spec.spacing) / 2
+    control = build_control(picks, scale, ridges, step, default_sigma_km=1.5)
+    model = build_age_model(spec, comps, control, Settings())
+    layers = age_layers(spec, comps, model)
+    with dask.config.set(scheduler="threads"):
+        return layers["age"].compute()
+
+
+def generic(spec, basin, records):
+    """scipy's linear griddata from the picks and ridge points (what users do today)."""
+    from scipy.interpolate import griddata
+
+    ridge = np.concatenate(basin.ridges())
+    points = np.concatenate([np.array([[r["lon"], r["lat"]] for r in records]), ridge])
+    values = np.concatenate([[r["age_ma"] for r in records], np.zeros(len(ridge))])
+    lon, lat = np.meshgrid(spec.x, spec.y)
+    return griddata(points, values, (lon, lat), method="linear")
+
+
+def timed(func, repeats):
+    times, result = [], None
+    for _ in range(repeats):
+        start = time.perf_counter()
+        result = func()
+        times.append(time.perf_counter() - start)
+    return statistics.median(times), times, result
+
+
+def write_bathymetry(path: Path, basin: SyntheticBasin, spec: GridSpec) -> None:
+    import xarray as xr
+
+    lon, lat = np.meshgrid(spec.x, spec.y)
+    age = basin.age(lon, lat)
+    depth = np.where(np.isfinite(age), thermal.MODELS["gdh1"].depth(np.nan_to_num(age)), 4500.0)
+    xr.Dataset({"depth": (("lat", "lon"), depth.astype(np.float32), {"units": "m", "positive": "down"})},
+               coords={"lat": spec.y, "lon": spec.x}).to_netcdf(path)
+
+
+def whole_build(folder: Path, runs: int) -> dict:
+    """`agegrid build --force` in fresh processes; median wall time, stage timings, peak memory."""
+    code = ("import resource, sys, time; from agegrid.cli import main; t = time.perf_counter(); "
+            "rc = main(['build', sys.argv[1], '--force', '--quiet']); "
+            "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, rc)")
+    walls, peaks, stages = [], [], []
+    for _ in range(runs):
+        out = subprocess.run([sys.executable, "-c", code, str(folder / "build.toml")], capture_output=True,
+                             text=True, check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
+        wall, peak, rc = out.stdout.split()
+        assert rc == "0", out.stderr
+        walls.append(float(wall))
+        peaks.append(float(peak))
+        stages.append(json.loads((folder / "out" / "manifest.json").read_text())["timings_s"])
+    median_stages = {k: round(statistics.median(s[k] for s in stages), 3) for k in stages[0]}
+    return {"wall_s": round(statistics.median(walls), 3), "walls_s": [round(w, 3) for w in walls],
+            "peak_memory_mb": round(max(peaks), 1), "stages_s": median_stages}
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sizes", default="0.1,0.025", help="grid spacings in degrees")
+    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--builds", type=int, default=3)
+    parser.add_argument("--large", action="store_true", help="add a grid of 16x the cells of the last size")
+    args = parser.parse_args(argv)
+    spacings = [float(s) for s in args.sizes.split(",")]
+    if args.large:
+        spacings.append(spacings[-1] / 4)
+    basin = SyntheticBasin()
+    scale = timescale.load("CK95")
+    records = basin.survey(scale, 60, noise_km=1.5, seed=1)
+    results = []
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        picks = read_picks(write_picks(tmp / "picks.csv", records))
+        for spacing in spacings:
+            spec = GridSpec(basin.region(0.5), spacing, chunk=512)
+            age_stage(GridSpec(basin.region(0.5), 0.5), basin, picks, scale)  # compile and import once
+            t_age, all_age, age = timed(lambda: age_stage(spec, basin, picks, scale), args.repeats)
+            t_gen, all_gen, gen = timed(lambda: generic(spec, basin, records), args.repeats)
+            lon, lat = np.meshgrid(spec.x, spec.y)
+            truth = basin.age(lon, lat)
+            _, plat = basin.to_pole_frame(lon, lat)
+            near = np.min(np.abs(plat[..., None] - np.array(basin.bands[1:-1])), axis=-1) < 0.5
+            folder = tmp / f"build-{spacing}"
+            basin_build(folder, basin, records=records, spacing=spacing, chunk=512, formats=("netcdf", "geotiff"),
+                        extra='[depth]\nmodels = ["gdh1", "ps77", "hsc"]\n')
+            text = (folder / "build.toml").read_text().replace('[grid]', 'bathymetry = "bathymetry.nc"\n[grid]')
+            (folder / "build.toml").write_text(text)
+            write_bathymetry(folder / "bathymetry.nc", basin, spec)
+            build = whole_build(folder, args.builds)
+            row = {
+                "spacing_deg": spacing, "cells": spec.size, "picks": len(records),
+                "age_stage_s": round(t_age, 3), "age_stage_runs_s": [round(t, 3) for t in all_age],
+                "griddata_s": round(t_gen, 3), "griddata_runs_s": [round(t, 3) for t in all_gen],
+                "age_over_griddata": round(t_age / t_gen, 2),
+                "build": build, "build_over_griddata": round(build["wall_s"] / t_gen, 2),
+                "accuracy_agegrid": {"all": score(age - truth), "near_fz": score(age - truth, near),
+                                     "empty_percent": round(100 * float((np.isfinite(truth) & ~np.isfinite(age)).sum()
+                                                                         / np.isfinite(truth).sum()), 3)},
+                "accuracy_griddata": {"all": score(gen - truth), "near_fz": score(gen - truth, near)},
+            }
+            results.append(row)
+            print(f"{spec.size:>10,} cells  age stage {t_age:6.2f} s  griddata {t_gen:6.2f} s  "
+                  f"ratio {row['age_over_griddata']:5.2f}  |  build {build['wall_s']:6.2f} s "
+                  f"(x{row['build_over_griddata']:.1f} griddata), peak {build['peak_memory_mb']:.0f} MB")
+            print(f"{'':>16}RMS/p95 Myr  agegrid {row['accuracy_agegrid']['all']}  near FZ "
+                  f"{row['accuracy_agegrid']['near_fz']}  |  griddata {row['accuracy_griddata']['all']}  "
+                  f"near FZ {row['accuracy_griddata']['near_fz']}")
+            print(f"{'':>16}build stages (median s): {build['stages_s']}")
+        if len(results) > 1:
+            first, last = results[0], results[-1]
+            print(f"scaling: {last['cells'] / first['cells']:.1f}x the cells took "
+                  f"{last['build']['wall_s'] / first['build']['wall_s']:.1f}x the build time")
+    out_dir = ROOT / "bench" / "results"
+    out_dir.mkdir(parents=True, exist_ok=True)
+    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+    (out_dir / f"bench-{stamp}.json").write_text(json.dumps({"when": stamp, "results": results}, indent=2))
+    print(f"results: bench/results/bench-{stamp}.json")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
