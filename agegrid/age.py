@@ -50,7 +50,7 @@ FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outs
 
 #: Layers the kernel returns, in order.
 LAYERS = ("age", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "age_fraction",
-          "half_rate", "spreading_azimuth", "compartment")
+          "half_rate", "spreading_azimuth", "compartment", "flank", "full_rate", "asymmetry")
 
 
 @dataclass
@@ -349,6 +349,7 @@ class PackedModel:
     ntrace: np.ndarray
     voff: np.ndarray
     toff: np.ndarray
+    ridge: np.ndarray
     V: np.ndarray
     D: np.ndarray
     ages: np.ndarray
@@ -362,6 +363,7 @@ class PackedModel:
         frames = np.zeros((n, 3, 3))
         w0, dw = np.zeros(n), np.ones(n)
         ncol, ntrace, voff, toff = (np.zeros(n, np.int64) for _ in range(4))
+        ridge = np.full(n, -1, np.int64)
         V, D, ages, bounds, sigma = [], [], [], [], []
         v_at, t_at = 0, 0
         for label, m in sorted(model.compartments.items()):
@@ -369,6 +371,8 @@ class PackedModel:
             frames[label] = np.stack([m.frame.c, m.frame.e_u, m.frame.n])
             w0[label], dw[label], ncol[label], ntrace[label] = m.u0, m.du, m.ncol, len(m.ages)
             voff[label], toff[label] = v_at, t_at
+            at_ridge = np.flatnonzero((m.ages == 0) & (m.bounds == 0))
+            ridge[label] = at_ridge[0] if len(at_ridge) else -1
             V.append(m.V.ravel())
             D.append(m.D.ravel())
             ages.append(m.ages)
@@ -380,7 +384,7 @@ class PackedModel:
         def join(parts, dtype):
             return np.concatenate(parts).astype(dtype) if parts else np.zeros(1, dtype)
 
-        return cls(has, frames, w0, dw, ncol, ntrace, voff, toff, join(V, np.float64), join(D, np.float64),
+        return cls(has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, join(V, np.float64), join(D, np.float64),
                    join(ages, np.float64), join(bounds, np.float64), join(sigma, np.float64))
 
 
@@ -396,7 +400,7 @@ def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, 
     p = packed
     x, y, z = (np.ascontiguousarray(c, dtype=np.float64) for c in xyz)
     evaluate(x, y, z, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
-             p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.V, p.D, p.ages, p.bounds, p.sigma,
+             p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
              GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, out)
     return out

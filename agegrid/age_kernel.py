@@ -13,13 +13,30 @@ from numba import njit, prange
 
 from agegrid.sphere import EARTH_RADIUS_KM
 
-N_LAYERS = 9
-(AGE, SIGMA, FLAG, YOUNG, OLD, FRACTION, RATE, AZIMUTH, COMPARTMENT) = range(N_LAYERS)
+N_LAYERS = 12
+(AGE, SIGMA, FLAG, YOUNG, OLD, FRACTION, RATE, AZIMUTH, COMPARTMENT, FLANK, FULL_RATE, ASYMMETRY) = range(N_LAYERS)
+
+
+@njit(cache=True)
+def _pair_rate(V, ages, i0, i1, nc, j0, t, dw, w):
+    """Half-rate (km/Myr) between traces i0 and i1 of one compartment at a column position."""
+    ia, ib = i0 * nc + j0, i1 * nc + j0
+    va = V[ia] * (1.0 - t) + V[ia + 1] * t
+    vb = V[ib] * (1.0 - t) + V[ib + 1] * t
+    gap = abs(vb - va)
+    dt = abs(ages[i1] - ages[i0])
+    if gap <= 0 or dt <= 0:
+        return np.nan
+    mid = 0.5 * (va + vb)
+    cos2 = max(1.0 - mid * mid, 1e-12)
+    slope = 0.5 * ((V[ia + 1] - V[ia]) + (V[ib + 1] - V[ib])) / dw
+    tilt = slope * (1.0 + w * w) / cos2
+    return gap / math.sqrt(cos2) * EARTH_RADIUS_KM / math.sqrt(1.0 + tilt * tilt) / dt
 
 
 @njit(parallel=True, cache=True, fastmath=False)
-def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, V, D, ages, bounds, sigma,
-             max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, out):
+def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
+             sigma, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, out):
     """Fill ``out`` (N_LAYERS, ny, nx) for unit vectors (x, y, z) of a block of cells.
 
     ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far).
@@ -32,7 +49,8 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
             out[COMPARTMENT, i, jj] = lab
             out[YOUNG, i, jj] = -1.0
             out[OLD, i, jj] = -1.0
-            for layer in (AGE, SIGMA, FRACTION, RATE, AZIMUTH):
+            out[FLANK, i, jj] = 0.0
+            for layer in (AGE, SIGMA, FRACTION, RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
                 out[layer, i, jj] = nan
             if not domain[i, jj]:
                 out[FLAG, i, jj] = flags[2]
@@ -112,6 +130,26 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
             if gap > 0 and dt > 0:
                 rate = gap / math.sqrt(cos2) * EARTH_RADIUS_KM / math.sqrt(1.0 + tilt * tilt) / dt
             out[RATE, i, jj] = rate
+            # flank and the conjugate flank's rate at the same age and along-strike position
+            r = ridge[lab]
+            if r >= 0:
+                plus = a >= r and not mirror
+                out[FLANK, i, jj] = 1.0 if plus else -1.0
+                conj = np.nan
+                if not mirror:
+                    if plus:  # the minus side: ages fall from index 0 (oldest) to the ridge at r
+                        for m in range(r):
+                            if ages[to + m] >= age >= ages[to + m + 1]:
+                                conj = _pair_rate(V[vo:], ages[to:], m, m + 1, nc, j0, t, dw[lab], w)
+                                break
+                    else:
+                        for m in range(r, K - 1):
+                            if ages[to + m] <= age <= ages[to + m + 1]:
+                                conj = _pair_rate(V[vo:], ages[to:], m, m + 1, nc, j0, t, dw[lab], w)
+                                break
+                if conj == conj and rate == rate:
+                    out[FULL_RATE, i, jj] = rate + conj
+                    out[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
             nx_, ny_, nz_ = f0[2, 0], f0[2, 1], f0[2, 2]
             evx, evy, evz = nx_ - s * px, ny_ - s * py, nz_ - s * pz
             nev = math.sqrt(evx * evx + evy * evy + evz * evz)

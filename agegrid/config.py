@@ -85,6 +85,12 @@ class Picks(Section):
     duplicate_km: float = Field(0.5, ge=0)
 
 
+class Kinematics(Section):
+    """``[kinematics]``: the age bands of the per-segment rate table."""
+
+    age_band_myr: float = Field(2.0, gt=0)
+
+
 class Depth(Section):
     """``[depth]``: cooling models, how to read the bathymetry, binning and the fit."""
 
@@ -162,6 +168,7 @@ class BuildConfig(Section):
     grid: Grid
     age: Age = Age()
     picks: Picks = Picks()
+    kinematics: Kinematics = Kinematics()
     depth: Depth = Depth()
     sediment: Sediment = Sediment()
     magnetic: Magnetic = Magnetic()

@@ -32,6 +32,7 @@ from agegrid.io.netcdf import dataset, write_netcdf
 from agegrid.io.points import read_picks
 from agegrid.io.rasters import read_grid
 from agegrid.io.vectors import read_lines, read_polygons
+from agegrid.kinematics import rate_table
 from agegrid.lock import BuildLock
 from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
 from agegrid.notices import CAUTION
@@ -43,7 +44,7 @@ from agegrid.variables import attributes
 log = logging.getLogger("agegrid")
 
 #: Layers written as GeoTIFF (the bracket indices and fraction stay in the NetCDF, for retiming).
-NOT_IN_GEOTIFF = ("age_bracket_young", "age_bracket_old", "age_fraction")
+NOT_IN_GEOTIFF = ("age_bracket_young", "age_bracket_old", "age_fraction", "compartment")
 #: float32 layers held at once at the peak of a build, for the size check.
 LAYERS_IN_MEMORY = 6
 
@@ -94,7 +95,7 @@ def plan(config) -> dict:
     """What a build would read and write, for ``agegrid validate``."""
     spec = GridSpec.from_config(config.grid)
     out = config.output.directory
-    names = ["age", "age_uncertainty", "age_flag", "half_rate", "spreading_azimuth"]
+    names = ["age", "age_uncertainty", "age_flag", "half_rate", "spreading_azimuth", "flank", "full_rate", "asymmetry"]
     names += [f"{k}_{m}" for m in config.depth.models for k in ("depth", "heat_flow")]
     if config.inputs.bathymetry:
         names += ["observed_depth"] + [f"residual_{m}" for m in config.depth.models]
@@ -107,7 +108,7 @@ def plan(config) -> dict:
         writes += [out / f"{config.name}_{n}.tif" for n in names]
     if "zarr" in config.output.formats:
         writes.append(out / f"{config.name}.zarr")
-    writes.append(out / "manifest.json")
+    writes += [out / f"{config.name}_rates.csv", out / "manifest.json"]
     return {"grid": {"shape": list(spec.shape), "cells": spec.size, "crs": spec.crs, "chunks": list(spec.chunks)},
             "reads": [str(p) for _, p in config.inputs if p is not None],
             "writes": [str(p) for p in writes], "variables": names}
@@ -146,7 +147,8 @@ def compute_layers(config, inputs: dict, stages: Stages) -> tuple[dict, dict, di
                           "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
     layers = age_layers(spec, comps, model)
     dtypes = {"age": np.float64, "age_fraction": np.float64, "age_flag": np.int8, "age_bracket_young": np.int16,
-              "age_bracket_old": np.int16, "compartment": np.int32}
+              "age_bracket_old": np.int16, "compartment": np.int32,
+              "flank": np.int8}
     layers = {k: v.astype(dtypes.get(k, np.float32)) for k, v in layers.items()}
     attrs = {name: attributes(name) for name in layers}
     attrs["age_flag"]["flag_values"] = np.array(attrs["age_flag"]["flag_values"], dtype=np.int8)
@@ -289,7 +291,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     if "geotiff" in config.output.formats:
                         with stages("write geotiff"):
                             for name in ds.data_vars:
-                                if name in NOT_IN_GEOTIFF or name == "crs" or name == "compartment":
+                                if name in NOT_IN_GEOTIFF or name == "crs":
                                     continue
                                 target = out_dir / f"{config.name}_{name}.tif"
                                 staged[target] = write_cog(written[name].data, target, spec, attrs[name])
@@ -302,6 +304,9 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     with stages("depth statistics"):
                         table, fit = _depth_tables(config, written)
                         facts["depth_fit"] = fit
+                    with stages("rate table"):
+                        target = out_dir / f"{config.name}_rates.csv"
+                        staged[target] = _stage_text(target, rate_table(written, config.kinematics.age_band_myr))
                 if config.inputs.bathymetry:
                     target = out_dir / f"{config.name}_depth_stats.csv"
                     staged[target] = _stage_text(target, table)

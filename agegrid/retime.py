@@ -13,7 +13,7 @@ from agegrid.control import RIDGE_LABEL
 from agegrid.errors import BadInput
 
 KEPT = ("age", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "age_fraction",
-        "half_rate", "spreading_azimuth", "compartment", "crs")
+        "half_rate", "spreading_azimuth", "compartment", "flank", "crs")
 
 
 def boundary_ages(labels: list[str], scale, source=None) -> tuple[np.ndarray, list[str]]:

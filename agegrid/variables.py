@@ -22,6 +22,12 @@ STATIC = {
     "half_rate": {"long_name": "half spreading rate", "units": "mm yr-1"},
     "spreading_azimuth": {"long_name": "spreading direction, clockwise from north, toward older crust",
                           "units": "degree"},
+    "flank": {"long_name": "side of its ridge segment the cell lies on (+1 or -1 in the compartment's frame, "
+                        "0 without a ridge)", "units": "1"},
+    "full_rate": {"long_name": "full spreading rate: this flank's half-rate plus the conjugate flank's at the same age",
+                  "units": "mm yr-1"},
+    "asymmetry": {"long_name": "share of the full spreading rate taken by this cell's flank (50 is symmetric)",
+                  "units": "percent"},
     "compartment": {"long_name": "compartment of the domain between barriers (0 outside the domain)", "units": "1"},
     "observed_depth": {"long_name": "observed sea-floor depth, positive down",
                        "standard_name": "sea_floor_depth_below_mean_sea_level", "units": "m"},

@@ -21,9 +21,9 @@ BLOCK = 256
 def write_cog(values, target: Path, spec, attrs: dict) -> Path:
     """Write one 2-D layer (numpy or lazy array) as a COG staged beside ``target``; returns the staged path."""
     dtype = np.dtype(values.dtype)
-    nodata = np.nan if dtype.kind == "f" else (-1 if dtype.kind == "i" else 0)
-    if dtype == np.int8:
+    if dtype == np.int8:  # GDAL's GTiff has no signed byte type before 3.7
         dtype = np.dtype(np.int16)
+    nodata = np.nan if dtype.kind == "f" else np.iinfo(dtype).min if dtype.kind == "i" else np.iinfo(dtype).max
     ny, nx = values.shape
     crs = rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
     tiled = staging_path(target.with_suffix(".tiled.tif"))
@@ -35,7 +35,10 @@ def write_cog(values, target: Path, spec, attrs: dict) -> Path:
         with rasterio.open(tiled, "w", **profile) as dst:
             rows = spec.chunks[0]
             for r0 in range(0, ny, rows):
-                block = np.asarray(values[r0:r0 + rows, :]).astype(dtype)
+                block = np.asarray(values[r0:r0 + rows, :])
+                if dtype.kind != "f":  # masked cells of an integer layer read back as NaN
+                    block = np.where(np.isnan(block), nodata, block) if block.dtype.kind == "f" else block
+                block = block.astype(dtype)
                 dst.write(block, 1, window=Window(0, r0, nx, block.shape[0]))
             dst.set_band_description(1, attrs.get("long_name", ""))
             dst.update_tags(1, **{k: str(v) for k, v in attrs.items()})

@@ -85,8 +85,8 @@ def encoding(ds: xr.Dataset, spec) -> dict:
             own.update({"_FillValue": None})
         elif var.ndim == 2:
             chunks = tuple(min(c, s) for c, s in zip(spec.chunks, var.shape))
-            kind = np.dtype(own.get("dtype", var.dtype)).kind
-            fill = np.nan if kind == "f" else (-1 if kind == "i" else 0)
+            dtype = np.dtype(own.get("dtype", var.dtype))
+            fill = np.nan if dtype.kind == "f" else np.iinfo(dtype).min if dtype.kind == "i" else np.iinfo(dtype).max
             own.update({"zlib": True, "complevel": 4, "shuffle": True, "chunksizes": chunks, "_FillValue": fill})
             if name in ("lat", "lon"):
                 own["_FillValue"] = None

@@ -1,0 +1,115 @@
+"""Depth-check: observed depth, sign detection, resampling, residuals against a known swell, statistics."""
+import csv
+
+import numpy as np
+import pytest
+import rasterio
+import xarray as xr
+from affine import Affine
+
+from agegrid.bathymetry import to_depth
+from agegrid.demo_picks.make_demo import BASIN, SWELL
+from agegrid.grid import GridSpec
+from agegrid.io.rasters import read_grid
+from agegrid.residual import binned_statistics, fit_sqrt_age
+from agegrid.sphere import distance_km
+
+
+def test_residual_recovers_the_swell(demo_build):
+    # the demo's observed depth is GDH1 of the true age minus a 700 m swell, with sediment and 25 m noise
+    with xr.open_dataset(demo_build / "veyra-basin.nc") as ds:
+        residual = ds["residual_gdh1"].values
+        lon, lat = np.meshgrid(ds["lon"].values, ds["lat"].values)
+    centre = BASIN.from_pole_frame(np.array(BASIN.ridge_lon[1] + SWELL["lon_offset"]), np.array(SWELL["lat_offset"]))
+    r = distance_km(lon, lat, centre[0], centre[1])
+    at_centre = np.nanmedian(residual[r < 15])
+    assert abs(at_centre - SWELL["height_m"]) <= 100, at_centre
+    far = np.nanmedian(residual[r > 4 * SWELL["radius_km"]])
+    assert abs(far) <= 60, far
+
+
+def test_depth_stats_and_fit(demo_build):
+    rows = list(csv.DictReader(open(demo_build / "veyra-basin_depth_stats.csv")))
+    assert {r["model"] for r in rows} == {"gdh1", "ps77", "hsc", "plate"}
+    assert all(int(r["cells"]) > 0 and float(r["iqr_m"]) >= 0 for r in rows)
+    import json
+
+    fit = json.loads((demo_build / "manifest.json").read_text())["depth_fit"]
+    assert fit["ridge_depth_sigma_m"] > 0 and fit["models"]["gdh1"]["sqrt_coefficient_m"] == pytest.approx(365, abs=1)
+
+
+def test_fit_recovers_known_law():
+    rng = np.random.default_rng(0)
+    age = rng.uniform(0, 60, 5000)
+    depth = 2500 + 350 * np.sqrt(age) + rng.normal(0, 30, age.size)
+    fit = fit_sqrt_age(age, depth, (0, 70))
+    assert fit["ridge_depth_m"] == pytest.approx(2500, abs=4 * fit["ridge_depth_sigma_m"] + 1)
+    assert fit["sqrt_coefficient_m"] == pytest.approx(350, abs=4 * fit["sqrt_coefficient_sigma_m"] + 0.5)
+    rows = binned_statistics(age, depth - (2500 + 350 * np.sqrt(age)), 10.0)
+    assert len(rows) == 6 and all(abs(r["median_m"]) < 5 for r in rows)
+    # the IQR of Gaussian noise is 1.349 sigma (a property of the normal distribution)
+    assert all(r["iqr_m"] == pytest.approx(1.349 * 30, rel=0.15) for r in rows)
+
+
+@pytest.mark.parametrize("attrs,values,expect_depth", [
+    ({"positive": "down"}, np.array([3000.0]), True),
+    ({"positive": "up"}, np.array([-3000.0]), False),
+    ({"standard_name": "height_above_mean_sea_level"}, np.array([-3000.0]), False),
+    ({"long_name": "water depth"}, np.array([3000.0]), True),
+    ({}, np.array([-4000.0, -3000.0]), False),
+    ({}, np.array([4000.0, 3000.0]), True),
+])
+def test_sign_detection(attrs, values, expect_depth):
+    depth, statement = to_depth(values, attrs)
+    assert np.all(depth > 0)
+    assert ("as depth" in statement) == expect_depth
+
+
+def test_sign_override():
+    depth, statement = to_depth(np.array([-3000.0]), {"positive": "down"}, "elevation")
+    assert depth[0] == 3000 and "depth.bathymetry_sign" in statement
+
+
+def test_geotiff_input_block_average_and_bilinear(tmp_path):
+    # a plane z = 10 x + 3 y: block averages and bilinear interpolation of a plane are exact
+    fine = 0.01
+    x = np.arange(0, 2, fine) + fine / 2
+    y = np.arange(2, 0, -fine) - fine / 2
+    plane = (10 * x[None, :] + 3 * y[:, None]).astype(np.float32)
+    path = tmp_path / "bathy.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=len(x), height=len(y), count=1, dtype="float32",
+                       crs="EPSG:4326", transform=Affine(fine, 0, 0, 0, -fine, 2)) as dst:
+        dst.write(plane, 1)
+    coarse = GridSpec((0.5, 1.5, 0.5, 1.5), 0.1)
+    values, _ = read_grid(path, coarse)
+    cx, cy = np.meshgrid(coarse.x, coarse.y)
+    assert np.allclose(values, 10 * cx + 3 * cy, atol=1e-3)
+    finer = GridSpec((0.5, 1.5, 0.5, 1.5), 0.005)
+    values, _ = read_grid(path, finer)
+    fx, fy = np.meshgrid(finer.x, finer.y)
+    assert np.allclose(values, 10 * fx + 3 * fy, atol=1e-3)
+
+
+def test_netcdf_input_other_longitude_convention(tmp_path):
+    lon = np.arange(0.25, 360, 0.5)
+    lat = np.arange(-89.75, 90, 0.5)
+    values = np.broadcast_to(np.where(lon > 180, lon - 360, lon)[None, :], (len(lat), len(lon))).astype(np.float32)
+    xr.Dataset({"z": (("lat", "lon"), values)}, coords={"lat": lat, "lon": lon}).to_netcdf(tmp_path / "g.nc")
+    spec = GridSpec((-20.0, 20.0, -10.0, 10.0), 1.0)
+    out, _ = read_grid(tmp_path / "g.nc", spec)
+    assert np.allclose(out, np.broadcast_to(spec.x[None, :], spec.shape), atol=1e-4)
+
+
+def test_isotherm_layer(tmp_path):
+    from agegrid.cli import main
+    from tests.helpers import basin_build
+
+    build = basin_build(tmp_path, tracks=20, spacing=0.25, extra='[depth]\nmodels = ["hsc"]\nisotherm_c = 1000.0\n')
+    assert main(["build", str(build), "--quiet"]) == 0
+    with xr.open_dataset(tmp_path / "out" / "basin.nc") as ds:
+        age = ds["age"].values
+        z = ds["isotherm_depth_hsc"].values
+        ok = np.isfinite(age) & (age > 1)
+        # half-space isotherm grows as sqrt(age) (Turcotte & Schubert eq. 4.113)
+        ratio = z[ok] / np.sqrt(age[ok])
+        assert np.allclose(ratio, ratio[0], rtol=1e-4)
