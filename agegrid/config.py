@@ -54,6 +54,29 @@ class Grid(Section):
             raise ValueError(f"must be a positive number, got {value}")
         return value
 
+    @field_validator("crs")
+    @classmethod
+    def _known_crs(cls, value):
+        import pyproj
+
+        try:
+            pyproj.CRS.from_user_input(value)
+        except pyproj.exceptions.CRSError as exc:
+            raise ValueError(f"unknown CRS {value!r}: {exc}") from None
+        return value
+
+    @model_validator(mode="after")
+    def _geographic_limits(self):
+        import pyproj
+
+        if pyproj.CRS.from_user_input(self.crs).is_geographic:
+            west, east, south, north = self.region
+            if south < -90 or north > 90:
+                raise ValueError(f"region latitudes must lie in [-90, 90], got {south}..{north}")
+            if east - west > 360 + 1e-9:
+                raise ValueError(f"region spans {east - west} degrees of longitude, more than 360")
+        return self
+
     @field_validator("region")
     @classmethod
     def _ordered(cls, value):

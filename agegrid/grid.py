@@ -136,17 +136,5 @@ class GridSpec:
 
     @classmethod
     def from_config(cls, grid) -> "GridSpec":
-        """Build from a validated ``[grid]`` section."""
-        spec = cls(tuple(grid.region), float(grid.spacing), grid.crs, int(grid.chunk))
-        try:
-            spec.pyproj_crs
-        except pyproj.exceptions.CRSError as exc:
-            raise BadInput(f"unknown CRS {grid.crs!r}: {exc}", where="grid.crs") from None
-        if spec.geographic:
-            west, east, south, north = spec.region
-            if south < -90 or north > 90:
-                raise BadInput(f"latitudes must lie in [-90, 90], got {south}..{north}", where="grid.region")
-            if east - west > 360 + 1e-9:
-                raise BadInput(f"region spans {east - west} degrees of longitude, more than 360",
-                               where="grid.region")
-        return spec
+        """Build from a ``[grid]`` section validated by :mod:`agegrid.config` (CRS and limits checked there)."""
+        return cls(tuple(grid.region), float(grid.spacing), grid.crs, int(grid.chunk))

@@ -47,6 +47,9 @@ def test_valid_file_resolves_paths(folder):
     (('name = "t"', 'name = "a b/c"'), "name", "file stem"),
     (('ridges = "ridges.geojson"', 'ridges = "nowhere.geojson"'), "inputs.ridges", "not found"),
     (('picks = "picks.csv"\n', ""), "inputs.picks", "required"),
+    (("spacing = 0.1", 'spacing = 0.1\ncrs = "EPSG:99999999"'), "grid.crs", "unknown CRS"),
+    (("region = [0, 10, -5, 5]", "region = [0, 10, -95, 5]"), "grid", "[-90, 90]"),
+    (("region = [0, 10, -5, 5]", "region = [0, 370, -5, 5]"), "grid", "more than 360"),
 ])
 def test_config_errors_name_the_key(folder, edit, key, words):
     path = write(folder, BASE.replace(*edit))
