@@ -105,6 +105,13 @@ def cmd_retime(args) -> int:
     return 0
 
 
+def cmd_report(args) -> int:
+    from agegrid.report import report_from_directory
+
+    print(report_from_directory(Path(args.directory)))
+    return 0
+
+
 def cmd_timescales(args) -> int:
     from agegrid import timescale
 
@@ -171,6 +178,11 @@ def parser() -> argparse.ArgumentParser:
     r.add_argument("--output", required=True, metavar="FILE")
     r.add_argument("--quiet", action="store_true")
     r.set_defaults(func=cmd_retime)
+
+    rp = sub.add_parser("report", help="regenerate report.html of an output directory without rebuilding")
+    rp.add_argument("directory", help="an output directory written by agegrid build")
+    rp.add_argument("--quiet", action="store_true")
+    rp.set_defaults(func=cmd_report)
 
     t = sub.add_parser("timescales", help="list the bundled polarity timescales with their sources")
     t.set_defaults(func=cmd_timescales, quiet=True)

@@ -37,6 +37,7 @@ from agegrid.lock import BuildLock
 from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
 from agegrid.notices import CAUTION
 from agegrid.qa import check_picks
+from agegrid.report import build_report
 from agegrid.residual import binned_statistics, fit_sqrt_age, residual
 from agegrid.sediment import lithology_from_config
 from agegrid.variables import attributes
@@ -306,12 +307,11 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                         facts["depth_fit"] = fit
                     with stages("rate table"):
                         target = out_dir / f"{config.name}_rates.csv"
-                        staged[target] = _stage_text(target, rate_table(written, config.kinematics.age_band_myr))
+                        rates_text = rate_table(written, config.kinematics.age_band_myr)
+                        staged[target] = _stage_text(target, rates_text)
                 if config.inputs.bathymetry:
                     target = out_dir / f"{config.name}_depth_stats.csv"
                     staged[target] = _stage_text(target, table)
-            if "netcdf" not in config.output.formats:
-                staged_nc.unlink()
             outputs = [{"path": str(t), **{k: v for k, v in describe_file(s).items() if k != "path"}}
                        for t, s in staged.items() if s.is_file()]
             manifest = {
@@ -325,7 +325,18 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 "timings_s": {**stages.timings, "total": round(time.perf_counter() - started, 3)},
                 "peak_memory_mb": peak_memory_mb(), "outputs": outputs, "caution": CAUTION,
             }
+            if config.output.report:
+                with stages("report"):
+                    target = out_dir / "report.html"
+                    with xr.open_dataset(staged_nc) as ds:
+                        page = build_report(ds, manifest, rates_text, table if config.inputs.bathymetry else None)
+                    staged[target] = _stage_text(target, page)
+                manifest["outputs"].append({"path": str(target), **{k: v for k, v in describe_file(
+                    staged[target]).items() if k != "path"}})
+                manifest["timings_s"]["report"] = stages.timings["report"]
             staged[out_dir / "manifest.json"] = _stage_text(out_dir / "manifest.json", to_json(manifest))
+            if "netcdf" not in config.output.formats:
+                staged_nc.unlink()
             for target, source in staged.items():
                 atomic.replace(source, target)
             staged.clear()
