@@ -22,6 +22,14 @@ def sha256(path: Path, block: int = 1 << 20) -> str:
 
 
 def describe_file(path: Path) -> dict:
+    """Path, size and sha256 of a file; for a folder (a Zarr store), of its files in sorted order."""
+    path = Path(path)
+    if path.is_dir():
+        digest, size = hashlib.sha256(), 0
+        for item in sorted(p for p in path.rglob("*") if p.is_file()):
+            digest.update(str(item.relative_to(path)).encode() + b"\0" + sha256(item).encode())
+            size += item.stat().st_size
+        return {"path": str(path), "bytes": size, "sha256": digest.hexdigest()}
     return {"path": str(path), "bytes": path.stat().st_size, "sha256": sha256(path)}
 
 

@@ -313,7 +313,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     target = out_dir / f"{config.name}_depth_stats.csv"
                     staged[target] = _stage_text(target, table)
             outputs = [{"path": str(t), **{k: v for k, v in describe_file(s).items() if k != "path"}}
-                       for t, s in staged.items() if s.is_file()]
+                       for t, s in staged.items() if s.exists()]
             manifest = {
                 "agegrid": __version__, "name": config.name,
                 "built": datetime.now(timezone.utc).isoformat(timespec="seconds"),

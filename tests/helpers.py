@@ -50,7 +50,7 @@ def basin_build(folder: Path, basin: SyntheticBasin | None = None, tracks: int =
     if with_domain:
         write_polygon(folder / "ocean.geojson", basin.domain_polygon())
         domain_line = 'domain = "ocean.geojson"'
-    region = list(region or basin.region(0.5))
+    region = [float(v) for v in (region or basin.region(0.5))]
     (folder / "build.toml").write_text(f'''name = "{name}"
 [inputs]
 picks = "picks.csv"
