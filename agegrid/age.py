@@ -226,12 +226,13 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
     col = (u - u0) / du
     km_per_col = du * sphere.EARTH_RADIUS_KM
     traces = []  # (flank, age, bound, V, D, sigma)
+    used = ridge.copy()
     if ridge.any():
         keep = _consistent(col[ridge], v[ridge], sigma[ridge])
-        used = ridge.copy()
         if not keep.all():
             outliers.extend(int(i) for i in np.flatnonzero(ridge)[~keep])
             used[np.flatnonzero(ridge)[~keep]] = False
+    if used.any():
         rv, rd = _trace(col[used], v[used], ncol, None, km_per_col)
         ridge_trace = (0, 0.0, 0, rv, rd, float(np.median(sigma[used])))
         cols = np.arange(ncol)
@@ -255,6 +256,8 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
                 idx = np.flatnonzero(sel)[~keep]
                 outliers.extend(int(i) for i in idx)
                 sel[idx] = False
+            if not sel.any():
+                continue
             V, D = _trace(col[sel], v[sel], ncol, None if previous is None else previous[3], km_per_col)
             if previous is not None:
                 xp = np.rint(col[sel]).astype(int).clip(0, ncol - 1)
@@ -420,17 +423,40 @@ def block_xyz(spec, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray, n
     return xyz[..., 0], xyz[..., 1], xyz[..., 2]
 
 
-def age_layers(spec, compartments, model: AgeModel) -> dict[str, da.Array]:
-    """The age-engine layers as lazy dask arrays, chunked like the grid."""
+def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.Array]:
+    """The age-engine layers as lazy dask arrays, chunked like the grid.
+
+    With a :class:`~agegrid.cache.BlockCache`, blocks whose inputs are unchanged are read back from it
+    and the others are computed and stored.
+    """
     chunks = spec.chunks
     labels = da.from_array(compartments.labels, chunks=chunks)
     domain = da.from_array(compartments.domain, chunks=chunks)
     packed = PackedModel.pack(model)
     settings = model.settings
+    if cache is not None:
+        keys = {}
+        rows, cols = labels.chunks
+        r_edges, c_edges = np.cumsum((0,) + rows), np.cumsum((0,) + cols)
+        for i in range(len(rows)):
+            for j in range(len(cols)):
+                window = (slice(r_edges[i], r_edges[i + 1]), slice(c_edges[j], c_edges[j + 1]))
+                keys[i, j] = cache.key(packed, settings, (i, j, chunks), compartments.labels[window],
+                                       compartments.domain[window], block_xyz(spec, *window))
+        cache.plan(keys)
 
     def block(lab, dom, block_info=None):
-        (r0, r1), (c0, c1) = block_info[0]["array-location"]
-        return evaluate_block(packed, settings, lab, dom, block_xyz(spec, slice(r0, r1), slice(c0, c1)))
+        info = block_info[0]
+        (r0, r1), (c0, c1) = info["array-location"]
+        key = None if cache is None else cache.keys[tuple(info["chunk-location"])]
+        if key is not None:
+            stored = cache.load(key)
+            if stored is not None:
+                return stored
+        result = evaluate_block(packed, settings, lab, dom, block_xyz(spec, slice(r0, r1), slice(c0, c1)))
+        if key is not None:
+            cache.store(key, result)
+        return result
 
     stacked = da.map_blocks(block, labels, domain, dtype=np.float64, new_axis=0,
                             chunks=((len(LAYERS),),) + labels.chunks)

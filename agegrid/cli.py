@@ -25,10 +25,18 @@ def _setup_logging(quiet: bool) -> None:
 
 
 def cmd_build(args) -> int:
+    from agegrid.cache import fingerprint, input_hashes, up_to_date
     from agegrid.config import load_build_file
-    from agegrid.pipeline import build
 
     config = load_build_file(args.config)
+    if not args.force:  # checked before the heavy imports, so a no-op rerun is quick
+        previous = up_to_date(config.output.directory, fingerprint(config, input_hashes(config)))
+        if previous is not None:
+            log.info("nothing changed since the build of %s: outputs in %s are up to date, nothing written",
+                     previous.get("built"), config.output.directory)
+            return 0
+    from agegrid.pipeline import build
+
     build(config, force=args.force, address=args.scheduler, workers=args.workers, progress=not args.quiet)
     return 0
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 import contextlib
 import csv
 import io
+import json
 import logging
 import sys
 import time
@@ -22,6 +23,7 @@ import xarray as xr
 from agegrid import __version__, thermal, timescale
 from agegrid.age import LAYERS, Settings, age_layers, build_age_model
 from agegrid.bathymetry import to_depth
+from agegrid.cache import BlockCache, fingerprint, up_to_date
 from agegrid.compartments import build_compartments
 from agegrid.control import build_control
 from agegrid.errors import BadInput
@@ -115,7 +117,7 @@ def plan(config) -> dict:
             "writes": [str(p) for p in writes], "variables": names}
 
 
-def compute_layers(config, inputs: dict, stages: Stages) -> tuple[dict, dict, dict]:
+def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[dict, dict, dict]:
     """All output layers as lazy arrays, with their attributes and the facts for the manifest."""
     spec = GridSpec.from_config(config.grid)
     spec.check_size(LAYERS_IN_MEMORY, config.source)
@@ -146,7 +148,12 @@ def compute_layers(config, inputs: dict, stages: Stages) -> tuple[dict, dict, di
     facts["age_model"] = {"compartments_with_control": len(model.compartments), "dropped_traces": model.dropped,
                           "outlier_control_points": int(len(model.outliers)),
                           "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
-    layers = age_layers(spec, comps, model)
+    with stages("block keys" if cache is not None else "age layers"):
+        layers = age_layers(spec, comps, model, cache)
+    if cache is not None:
+        facts["cache"] = cache.summary()
+        log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, len(cache.keys),
+                 len(cache.keys) - cache.reused)
     dtypes = {"age": np.float64, "age_fraction": np.float64, "age_flag": np.int8, "age_bracket_young": np.int16,
               "age_bracket_old": np.int16, "compartment": np.int32,
               "flank": np.int8}
@@ -274,9 +281,17 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
             log.info("removed %d temporary file(s) left by an interrupted build", len(removed))
         stages = Stages()
         started = time.perf_counter()
+        input_files = {k: describe_file(Path(p)) for k, p in config.inputs if p is not None}
+        build_fingerprint = fingerprint(config, {k: v["sha256"] for k, v in input_files.items()})
+        previous = up_to_date(out_dir, build_fingerprint) if not force else None
+        if previous is not None:
+            log.info("nothing changed since the build of %s: outputs are up to date, nothing written",
+                     previous.get("built"))
+            return previous
+        cache = BlockCache(out_dir, enabled=not force)
         with stages("read inputs"):
             inputs = read_inputs(config)
-        layers, attrs, facts = compute_layers(config, inputs, stages)
+        layers, attrs, facts = compute_layers(config, inputs, stages, cache)
         spec = GridSpec.from_config(config.grid)
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
         staged: dict[Path, Path] = {}
@@ -319,7 +334,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 "built": datetime.now(timezone.utc).isoformat(timespec="seconds"),
                 "build_file": describe_file(Path(config.source)),
                 "config": config.model_dump(mode="json"),
-                "inputs": {k: describe_file(Path(p)) for k, p in config.inputs if p is not None},
+                "inputs": input_files, "fingerprint": build_fingerprint,
                 "grid": plan(config)["grid"], "scheduler": sched, "versions": versions(),
                 **{k: v for k, v in facts.items() if k != "model_labels"},
                 "timings_s": {**stages.timings, "total": round(time.perf_counter() - started, 3)},
@@ -340,6 +355,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
             for target, source in staged.items():
                 atomic.replace(source, target)
             staged.clear()
+            cache.prune()
         finally:
             for source in staged.values():
                 if source.is_dir():

@@ -64,8 +64,20 @@ def _scale_bar(ax, x, y, geographic):
             bbox={"facecolor": "white", "alpha": 0.7, "edgecolor": "none", "pad": 1})
 
 
-def _north_arrow(ax, x, y):
-    ax.annotate("N", xy=(0.95, 0.95), xytext=(0.95, 0.85), xycoords="axes fraction", ha="center",
+def _north_arrow(ax, ds, x, y):
+    """An arrow toward true north at the map's centre (grid north differs on polar and conic grids)."""
+    import pyproj
+
+    crs = pyproj.CRS.from_wkt(ds["crs"].attrs["crs_wkt"])
+    to_geo = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+    to_map = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+    cx, cy = float(np.mean(x)), float(np.mean(y))
+    lon, lat = to_geo.transform(cx, cy)
+    nx, ny = to_map.transform(lon, min(lat + 0.1, 89.999))
+    angle = np.arctan2(nx - cx, ny - cy)
+    dx, dy = 0.08 * np.sin(angle), 0.08 * np.cos(angle)
+    ax.annotate("N", xy=(0.93 + dx / 2, 0.9 + dy / 2), xytext=(0.93 - dx / 2, 0.9 - dy / 2),
+                xycoords="axes fraction", ha="center", va="center",
                 arrowprops={"arrowstyle": "-|>", "color": "black"}, fontsize=10)
 
 
@@ -94,7 +106,7 @@ def map_plot(ds, name, title, cmap, label, overlays=None, diverging=False) -> st
         ax.set_aspect(1 / np.cos(np.radians(np.mean(y))))
     else:
         ax.set_aspect("equal")
-        _north_arrow(ax, x, y)
+        _north_arrow(ax, ds, x, y)
     _scale_bar(ax, x, y, geographic)
     return _png(fig)
 

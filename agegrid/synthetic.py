@@ -217,20 +217,20 @@ class SyntheticBasin:
     # --- a survey ----------------------------------------------------------------------------
     def survey(self, timescale, tracks: int, noise_km: float = 1.5, seed: int = 0,
                picked=DEFAULT_PICKED, sample_km: float = 1.0, track_km: tuple = (1500.0, 4000.0),
-               spread_deg: float = 35.0) -> list[dict]:
+               spread_deg: float = 35.0, start_box: tuple | None = None, prefix: str = "T") -> list[dict]:
         """Picks where random survey tracks cross the isochrons of the picked chron ends.
 
         Tracks are great-circle lines through random points of the basin, heading within
         ``spread_deg`` of the local spreading direction; each crossing is moved by Gaussian noise of
-        ``noise_km`` per axis. Returns one record per pick (lon, lat, chron, edge, age_ma, track, id,
+        ``noise_km`` per axis; ``start_box`` (west, east, south, north) confines the tracks' centres.
+        Returns one record per pick (lon, lat, chron, edge, age_ma, track, id,
         plus the true flank and corridor).
         """
         rng = np.random.default_rng(seed)
         boundaries = [(c, e, timescale.boundary(c, e)) for c, e in picked]
         boundaries = [b for b in boundaries if b[2] < self.max_age]
         targets = np.array([b[2] for b in boundaries])
-        west, east, south, north = self.region(0.0)
-        poly = self.domain_polygon()
+        west, east, south, north = start_box or self.region(0.0)
         records = []
         made = 0
         while made < tracks:
@@ -256,7 +256,7 @@ class SyntheticBasin:
                     pla2 = pla + np.degrees(n_km / sphere.EARTH_RADIUS_KM)
                     plon2 = plon + np.degrees(e_km / (sphere.EARTH_RADIUS_KM * np.cos(np.radians(pla))))
                     chron, edge, t = boundaries[j]
-                    records.append({"id": f"T{made:03d}-{len(records):05d}", "track": f"T{made:03d}",
+                    records.append({"id": f"{prefix}{made:03d}-{len(records):05d}", "track": f"{prefix}{made:03d}",
                                     "lon": round(float((plon2 + 180) % 360 - 180), 6), "lat": round(float(pla2), 6),
                                     "chron": chron, "edge": edge, "age_ma": t,
                                     "true_flank": int(side[i]), "true_corridor": int(k[i])})
