@@ -108,8 +108,16 @@ def whole_build(folder: Path, runs: int) -> dict:
         peaks.append(float(peak))
         stages.append(json.loads((folder / "out" / "manifest.json").read_text())["timings_s"])
     median_stages = {k: round(statistics.median(s[k] for s in stages), 3) for k in stages[0]}
-    return {"wall_s": round(statistics.median(walls), 3), "walls_s": [round(w, 3) for w in walls],
-            "peak_memory_mb": round(max(peaks), 1), "stages_s": median_stages}
+    noop = []
+    for _ in range(runs):  # reruns with nothing changed, from the command line
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-m", "agegrid", "build", str(folder / "build.toml"), "--quiet"], check=True,
+                       env={**os.environ, "PYTHONPATH": str(ROOT)})
+        noop.append(time.perf_counter() - start)
+    wall = statistics.median(walls)
+    return {"wall_s": round(wall, 3), "walls_s": [round(w, 3) for w in walls],
+            "peak_memory_mb": round(max(peaks), 1), "stages_s": median_stages,
+            "noop_rerun_s": round(statistics.median(noop), 3), "noop_over_build": round(statistics.median(noop) / wall, 3)}
 
 
 def main(argv=None) -> int:
@@ -164,6 +172,7 @@ def main(argv=None) -> int:
                   f"{row['accuracy_agegrid']['near_fz']}  |  griddata {row['accuracy_griddata']['all']}  "
                   f"near FZ {row['accuracy_griddata']['near_fz']}")
             print(f"{'':>16}build stages (median s): {build['stages_s']}")
+            print(f"{'':>16}no-op rerun {build['noop_rerun_s']:.2f} s = {build['noop_over_build']:.2f} of a build")
         if len(results) > 1:
             first, last = results[0], results[-1]
             print(f"scaling: {last['cells'] / first['cells']:.1f}x the cells took "
