@@ -103,10 +103,7 @@ def cmd_retime(args) -> int:
         out, warnings = retime_dataset(ds.load(), scale, args.grid)
     for w in warnings:
         log.warning(w)
-    x, y = (out["lon"].values, out["lat"].values) if "lon" in out.dims else (out["x"].values, out["y"].values)
-    step = float(abs(x[1] - x[0]))
-    spec = GridSpec((float(x[0] - step / 2), float(x[-1] + step / 2), float(y[-1] - step / 2),
-                     float(y[0] + step / 2)), step, out["crs"].attrs.get("crs_wkt", "EPSG:4326"))
+    spec = GridSpec.from_dataset(out)
     target = Path(args.output)
     replace(write_netcdf(out, target, spec), target)
     log.info("retimed %s to %s: %s", args.grid, scale.name, target)

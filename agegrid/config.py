@@ -170,9 +170,19 @@ class Magnetic(Section):
 
     layer_thickness_km: float = Field(0.5, gt=0)
     magnetisation: float = 5.0
-    epoch: float | None = 2020.0
-    field_inclination: float | None = None
-    field_declination: float | None = None
+    epoch: float | None = Field(2020.0, ge=1900, le=2035)
+    field_inclination: float | None = Field(None, ge=-90, le=90)
+    field_declination: float | None = Field(None, ge=-360, le=360)
+    tolerance_km: float = Field(5.0, gt=0)
+    window_km: float = Field(40.0, gt=0)
+    max_lag_km: float = Field(25.0, gt=0)
+    min_correlation: float = Field(0.5, ge=-1, le=1)
+
+    @model_validator(mode="after")
+    def _field_given_once(self):
+        if (self.field_inclination is None) != (self.field_declination is None):
+            raise ValueError("give field_inclination and field_declination together (or neither, for the IGRF)")
+        return self
 
 
 class Output(Section):

@@ -135,6 +135,16 @@ class GridSpec:
                 "or split the region", source, key)
 
     @classmethod
+    def from_dataset(cls, ds) -> "GridSpec":
+        """The grid of a dataset written by agegrid (regular ``lon``/``lat`` or ``x``/``y``, a ``crs`` variable)."""
+        geographic = "lon" in ds.dims
+        x, y = (ds["lon"].values, ds["lat"].values) if geographic else (ds["x"].values, ds["y"].values)
+        step = float(abs(x[1] - x[0]))
+        crs = "EPSG:4326" if geographic else ds["crs"].attrs.get("crs_wkt")
+        return cls((float(x[0] - step / 2), float(x[-1] + step / 2), float(y[-1] - step / 2), float(y[0] + step / 2)),
+                   step, crs)
+
+    @classmethod
     def from_config(cls, grid) -> "GridSpec":
         """Build from a ``[grid]`` section validated by :mod:`agegrid.config` (CRS and limits checked there)."""
         return cls(tuple(grid.region), float(grid.spacing), grid.crs, int(grid.chunk))

@@ -145,11 +145,11 @@ def anomaly_layer(spec, age, top, timescale, settings: MagneticSettings, halo: i
     depth = da.where(da.isfinite(top), top, np.nan)
 
     def tile(m, z, block_info=None):
+        # the location is in the halo-padded array: shift back and clip to find the tile's centre cell
         (r0, r1), (c0, c1) = block_info[0]["array-location"]
-        rows = slice(max(r0, 0), min(r1, spec.shape[0]))
-        cols = slice(max(c0, 0), min(c1, spec.shape[1]))
-        lon, lat = spec.lonlat(slice((rows.start + rows.stop) // 2, (rows.start + rows.stop) // 2 + 1),
-                               slice((cols.start + cols.stop) // 2, (cols.start + cols.stop) // 2 + 1))
+        row = int(np.clip((r0 + r1) // 2 - halo, 0, spec.shape[0] - 1))
+        col = int(np.clip((c0 + c1) // 2 - halo, 0, spec.shape[1] - 1))
+        lon, lat = spec.lonlat(slice(row, row + 1), slice(col, col + 1))
         lon, lat = float(lon[0, 0]), float(lat[0, 0])
         remanence, field = tile_directions(settings, lon, lat)
         z = np.where(np.isfinite(z), z, np.nanmean(z) if np.isfinite(z).any() else 4000.0)

@@ -34,7 +34,11 @@ from agegrid.io.netcdf import dataset, write_netcdf
 from agegrid.io.points import read_picks
 from agegrid.io.rasters import read_grid
 from agegrid.io.vectors import read_lines, read_polygons
+from agegrid.alignment import AlignmentSettings, check_profiles
+from agegrid.control import date_picks
+from agegrid.io.profiles import read_profiles
 from agegrid.kinematics import rate_table
+from agegrid.magnetic import MagneticSettings, anomaly_layer
 from agegrid.lock import BuildLock
 from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
 from agegrid.notices import CAUTION
@@ -77,7 +81,19 @@ def read_inputs(config) -> dict:
         "barriers": read_lines(inp.barriers) if inp.barriers else [],
         "domain": read_polygons(inp.domain) if inp.domain else None,
         "timescale": timescale.load(config.age.timescale),
+        "profiles": read_profiles(inp.magnetic_profiles) if inp.magnetic_profiles else None,
     }
+
+
+def magnetic_enabled(config) -> bool:
+    """The magnetic check runs when a magnetic input is given or the build file has a [magnetic] table."""
+    return bool(config.inputs.magnetic_grid or config.inputs.magnetic_profiles or "magnetic" in config.model_fields_set)
+
+
+def _magnetic_settings(config) -> MagneticSettings:
+    m = config.magnetic
+    return MagneticSettings(m.layer_thickness_km * 1e3, m.magnetisation, m.epoch, m.field_inclination,
+                            m.field_declination)
 
 
 def _elementwise(func, array, dtype=np.float32):
@@ -105,12 +121,20 @@ def plan(config) -> dict:
         if config.inputs.sediment:
             names += ["sediment_correction"]
     writes = []
+    if magnetic_enabled(config):
+        names.append("magnetic_anomaly_predicted")
+        if config.inputs.magnetic_grid:
+            names.append("magnetic_residual")
+        if config.inputs.magnetic_profiles:
+            writes.append(out / f"{config.name}_tracks.csv")
     if "netcdf" in config.output.formats:
         writes.append(out / f"{config.name}.nc")
     if "geotiff" in config.output.formats:
         writes += [out / f"{config.name}_{n}.tif" for n in names]
     if "zarr" in config.output.formats:
         writes.append(out / f"{config.name}.zarr")
+    if config.output.report:
+        writes.append(out / "report.html")
     writes += [out / f"{config.name}_rates.csv", out / "manifest.json"]
     return {"grid": {"shape": list(spec.shape), "cells": spec.size, "crs": spec.crs, "chunks": list(spec.chunks)},
             "reads": [str(p) for _, p in config.inputs if p is not None],
@@ -200,6 +224,28 @@ def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[di
             for name in config.depth.models:
                 layers[f"residual_{name}"] = residual(layers[f"depth_{name}"], corrected).astype(np.float32)
                 attrs[f"residual_{name}"] = attributes(f"residual_{name}")
+    if magnetic_enabled(config):
+        with stages("magnetic model"):
+            top_name = "observed_depth" if "observed_depth" in layers else f"depth_{config.depth.models[0]}"
+            settings = _magnetic_settings(config)
+            predicted = anomaly_layer(spec, layers["age"], layers[top_name], scale, settings)
+            layers["magnetic_anomaly_predicted"] = predicted.astype(np.float32)
+            attrs["magnetic_anomaly_predicted"] = {
+                **attributes("magnetic_anomaly_predicted"),
+                "comment": f"layer {settings.thickness_m:g} m thick, top at {top_name}, {settings.magnetisation:g} A/m; "
+                           "remanence along a geocentric axial dipole at the present latitude; ambient field "
+                           + ("from the build file" if settings.field_inclination is not None else
+                              f"from the IGRF at epoch {settings.epoch:g}")}
+            facts["magnetic"] = {"layer_thickness_m": settings.thickness_m, "magnetisation_a_m": settings.magnetisation,
+                                 "top": top_name, "epoch": settings.epoch,
+                                 "field_inclination": settings.field_inclination,
+                                 "field_declination": settings.field_declination,
+                                 "remanence": "geocentric axial dipole at the present latitude (tan I = 2 tan lat)"}
+            if config.inputs.magnetic_grid:
+                observed, _ = read_grid(config.inputs.magnetic_grid, spec)
+                layers["magnetic_residual"] = (da.from_array(observed, chunks=spec.chunks)
+                                               - layers["magnetic_anomaly_predicted"]).astype(np.float32)
+                attrs["magnetic_residual"] = attributes("magnetic_residual")
     facts["timescale"] = scale.describe()
     facts["models"] = {name: m.describe() for name, m in _models(config).items()}
     facts["model_labels"] = model.labels
@@ -320,6 +366,9 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     with stages("depth statistics"):
                         table, fit = _depth_tables(config, written)
                         facts["depth_fit"] = fit
+                    if magnetic_enabled(config):
+                        with stages("magnetic check"):
+                            _magnetic_check(config, inputs, written, facts, staged, out_dir, spec)
                     with stages("rate table"):
                         target = out_dir / f"{config.name}_rates.csv"
                         rates_text = rate_table(written, config.kinematics.age_band_myr)
@@ -367,6 +416,45 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         log.info("build %s done in %.1f s: %d outputs in %s", config.name, manifest["timings_s"]["total"],
                  len(outputs) + 1, out_dir)
         return manifest
+
+
+def _magnetic_check(config, inputs, ds, facts, staged, out_dir, spec) -> None:
+    """Correlation per compartment against an observed grid; picks checked along survey profiles."""
+    predicted = ds["magnetic_anomaly_predicted"].values
+    if "magnetic_residual" in ds:
+        observed = ds["magnetic_residual"].values + predicted
+        comp = ds["compartment"].values
+        corr = {}
+        for label in np.unique(comp[comp > 0]):
+            ok = (comp == label) & np.isfinite(observed) & np.isfinite(predicted)
+            if ok.sum() > 10:
+                corr[int(label)] = round(float(np.corrcoef(observed[ok], predicted[ok])[0, 1]), 3)
+        facts["magnetic"]["grid_correlation_by_compartment"] = corr
+    profiles = inputs["profiles"]
+    if profiles is None:
+        return
+    m = config.magnetic
+    ages, _ = date_picks(inputs["picks"], inputs["timescale"])
+    tracks, picks = check_profiles(profiles, spec, predicted, ds["age"].values, ds["half_rate"].values,
+                                   inputs["picks"], ages, AlignmentSettings(m.tolerance_km, m.window_km,
+                                                                            m.max_lag_km, m.min_correlation))
+    buffer = io.StringIO()
+    writer = csv.DictWriter(buffer, list(tracks[0]) if tracks else ["track"], lineterminator="\n")
+    writer.writeheader()
+    writer.writerows(tracks)
+    target = out_dir / f"{config.name}_tracks.csv"
+    staged[target] = _stage_text(target, buffer.getvalue())
+    flagged = [p for p in picks if p["flagged"]]
+    facts["magnetic"]["picks_checked"] = len(picks)
+    facts["magnetic"]["flagged_picks"] = flagged
+    facts["magnetic"]["tracks"] = tracks
+    qa = facts["qa"]
+    for p in flagged:
+        qa["suspect_picks"].append({"id": p["id"], "where": p["where"], "kind": "magnetic_mismatch",
+                                    "problem": p["reason"]})
+    qa["findings"] = len(qa["suspect_picks"])
+    qa["by_kind"]["magnetic_mismatch"] = len(flagged)
+    log.info("magnetic check: %d picks on %d surveyed tracks, %d flagged", len(picks), len(tracks), len(flagged))
 
 
 def _stage_text(target: Path, text: str) -> Path:

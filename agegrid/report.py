@@ -141,6 +141,39 @@ def age_depth_plot(ds, models: dict, fit: dict | None) -> str:
     return _png(fig)
 
 
+def track_plot(ds, manifest: dict, limit: int = 3) -> str | None:
+    """Observed against predicted anomaly along the surveyed tracks that match worst."""
+    from agegrid.alignment import sample
+    from agegrid.grid import GridSpec
+    from agegrid.io.profiles import read_profiles
+
+    tracks = manifest.get("magnetic", {}).get("tracks", [])
+    path = manifest.get("inputs", {}).get("magnetic_profiles", {}).get("path")
+    if not tracks or not path or not Path(path).is_file():
+        return None
+    profiles = read_profiles(path)
+    spec = GridSpec.from_dataset(ds)
+    predicted = ds["magnetic_anomaly_predicted"].values
+    worst = sorted(tracks, key=lambda t: (-int(t["flagged"]), t["correlation"] if t["correlation"] != "" else -2))
+    worst = worst[:limit]
+    plt = _matplotlib()
+    fig, axes = plt.subplots(len(worst), 1, figsize=(8, 2.6 * len(worst)), squeeze=False)
+    by_name = dict(profiles.tracks())
+    for ax, row in zip(axes[:, 0], worst):
+        idx = by_name[row["track"]]
+        lon, lat = profiles.lon[idx], profiles.lat[idx]
+        s = np.concatenate([[0.0], np.cumsum(sphere.distance_km(lon[:-1], lat[:-1], lon[1:], lat[1:]))])
+        ax.plot(s, profiles.anomaly[idx], color="black", linewidth=1, label="observed")
+        ax.plot(s, sample(predicted, spec, lon, lat), color="#d95f02", linewidth=1, label="predicted")
+        ax.set_title(f"track {row['track']}: correlation {row['correlation']}, lag {row['lag_km']} km, "
+                     f"{row['flagged']} flagged pick(s)", fontsize=9)
+        ax.set_ylabel("anomaly (nT)")
+        ax.legend(fontsize=7, loc="upper right")
+    axes[-1, 0].set_xlabel("distance along track (km)")
+    fig.tight_layout()
+    return _png(fig)
+
+
 def _line_overlay(lines, color, width):
     def draw(ax):
         for line in lines:
@@ -241,6 +274,13 @@ def build_report(ds, manifest: dict, rates_csv: str | None = None, depth_csv: st
                     ds, f"residual_{name}", f"Residual depth, {name}", "RdBu_r", "residual (m)", overlays,
                     diverging=True)))
                 break
+    if "magnetic_anomaly_predicted" in ds:
+        figures.append(("Predicted magnetic anomaly at the sea surface", map_plot(
+            ds, "magnetic_anomaly_predicted", "Predicted magnetic anomaly", "RdBu_r", "anomaly (nT)", overlays,
+            diverging=True)))
+        along = track_plot(ds, manifest)
+        if along:
+            figures.append(("Observed and predicted anomaly along the surveyed tracks that match worst", along))
     facts = [
         ("build", manifest.get("name")), ("built", manifest.get("built")), ("agegrid", manifest.get("agegrid")),
         ("timescale", f"{manifest.get('timescale', {}).get('name')}: {manifest.get('timescale', {}).get('reference')}"),
@@ -281,6 +321,8 @@ def build_report(ds, manifest: dict, rates_csv: str | None = None, depth_csv: st
         f"<h2>Pick QA</h2><p>{qa.get('picks_checked', 0)} picks checked, {qa.get('findings', 0)} findings: "
         f"{html.escape(json.dumps(qa.get('by_kind', {})))}</p>",
         _table([dict(f) for f in qa.get("suspect_picks", [])], 50),
+        "<h2>Magnetic check along survey tracks</h2>",
+        _table([{k: v for k, v in t.items()} for t in manifest.get("magnetic", {}).get("tracks", [])]),
         "<h2>Rates per segment, flank and age band</h2>", _table(_read_csv(rates_csv)),
         "<h2>Residual depth by age bin</h2>", _table(_read_csv(depth_csv)),
         "<h2>Depth fit against the models</h2>", _table(fit_rows),

@@ -217,12 +217,15 @@ class SyntheticBasin:
     # --- a survey ----------------------------------------------------------------------------
     def survey(self, timescale, tracks: int, noise_km: float = 1.5, seed: int = 0,
                picked=DEFAULT_PICKED, sample_km: float = 1.0, track_km: tuple = (1500.0, 4000.0),
-               spread_deg: float = 35.0, start_box: tuple | None = None, prefix: str = "T") -> list[dict]:
+               spread_deg: float = 35.0, start_box: tuple | None = None, prefix: str = "T",
+               profile: list | None = None, profile_step: int = 2) -> list[dict]:
         """Picks where random survey tracks cross the isochrons of the picked chron ends.
 
         Tracks are great-circle lines through random points of the basin, heading within
         ``spread_deg`` of the local spreading direction; each crossing is moved by Gaussian noise of
         ``noise_km`` per axis; ``start_box`` (west, east, south, north) confines the tracks' centres.
+        With ``profile`` (a list), every ``profile_step``-th track sample inside the basin is appended to it
+        as {lon, lat, track}, for survey profiles.
         Returns one record per pick (lon, lat, chron, edge, age_ma, track, id,
         plus the true flank and corridor).
         """
@@ -244,6 +247,10 @@ class SyntheticBasin:
             plat, k, d = self._locate(lon, lat)
             side = np.sign(d)
             made += 1
+            if profile is not None:
+                inside = np.flatnonzero(np.isfinite(age))[::profile_step]
+                profile.extend({"lon": float((lon[i] + 180) % 360 - 180), "lat": float(lat[i]),
+                                "track": f"{prefix}{made:03d}"} for i in inside)
             for i in range(len(lon) - 1):
                 a0, a1 = age[i], age[i + 1]
                 if not (np.isfinite(a0) and np.isfinite(a1)) or k[i] != k[i + 1] or side[i] != side[i + 1]:

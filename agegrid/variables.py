@@ -28,6 +28,9 @@ STATIC = {
                   "units": "mm yr-1"},
     "asymmetry": {"long_name": "share of the full spreading rate taken by this cell's flank (50 is symmetric)",
                   "units": "percent"},
+    "magnetic_anomaly_predicted": {"long_name": "total-field magnetic anomaly predicted at the sea surface from "
+                                   "the age grid and the timescale (Parker 1973)", "units": "nT"},
+    "magnetic_residual": {"long_name": "observed minus predicted total-field magnetic anomaly", "units": "nT"},
     "compartment": {"long_name": "compartment of the domain between barriers (0 outside the domain)", "units": "1"},
     "observed_depth": {"long_name": "observed sea-floor depth, positive down",
                        "standard_name": "sea_floor_depth_below_mean_sea_level", "units": "m"},

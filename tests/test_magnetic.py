@@ -115,3 +115,73 @@ def test_dipole_inclination():
     assert dipole_inclination(0.0) == 0.0
     assert dipole_inclination(45.0) == pytest.approx(np.degrees(np.arctan(2.0)))
     assert dipole_inclination(-30.0) == pytest.approx(-np.degrees(np.arctan(2 * np.tan(np.radians(30)))))
+
+
+def test_profile_check_flags_a_moved_pick(tmp_path):
+    """A pick moved 15 km along its track is flagged with the shift recovered to 3 km; clean picks are not."""
+    import csv
+    import json
+
+    import dask
+    import pyproj
+
+    from agegrid import sphere, thermal, timescale
+    from agegrid.cli import main
+    from agegrid.grid import GridSpec
+    from agegrid.magnetic import MagneticSettings, anomaly_layer
+    from agegrid.synthetic import Stage, SyntheticBasin
+    from agegrid.alignment import sample
+    from tests.helpers import basin_build
+
+    basin = SyntheticBasin(pole=(-60.0, 50.0), spin_deg=90.0, bands=[-3.0, 0.5, 4.0], ridge_lon=[0.0, 0.8],
+                           stages=[Stage(4.0, 60.0, 50.0), Stage(9.0, 45.0, 55.0)])
+    ck = timescale.load("CK95")
+    profile = []
+    records = basin.survey(ck, 24, noise_km=0.5, seed=8, profile=profile, profile_step=1)
+    spec = GridSpec(basin.region(0.5), 0.02)
+    settings = MagneticSettings(500.0, 5.0, None, 55.0, 12.0)
+    lon, lat = spec.lonlat()
+    truth = basin.age(lon, lat)
+    import dask.array as da
+
+    true_age = da.from_array(truth, chunks=spec.chunks)
+    top = da.from_array(thermal.MODELS["gdh1"].depth(truth), chunks=spec.chunks)
+    with dask.config.set(scheduler="threads"):
+        observed = anomaly_layer(spec, true_age, top, ck, settings).compute()
+    plon, plat = np.array([p["lon"] for p in profile]), np.array([p["lat"] for p in profile])
+    anomaly = sample(observed, spec, plon, plat)
+    with open(tmp_path / "tracks.csv", "w", newline="") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["lon", "lat", "anomaly_nt", "track"])
+        for p, a in zip(profile, anomaly):
+            if np.isfinite(a):
+                writer.writerow([p["lon"], p["lat"], round(float(a), 3), p["track"]])
+    # move one pick 15 km along its own track, away from the track's ends
+    track_points = {}
+    for p in profile:
+        track_points.setdefault(p["track"], []).append((p["lon"], p["lat"]))
+    candidates = [r for r in records if 3.0 < r["age_ma"] < 8.0]
+    victim = candidates[len(candidates) // 2]
+    pts = np.array(track_points[victim["track"]])
+    k = int(np.argmin(sphere.distance_km(victim["lon"], victim["lat"], pts[:, 0], pts[:, 1])))
+    geod = pyproj.Geod(a=sphere.EARTH_RADIUS_KM * 1e3, b=sphere.EARTH_RADIUS_KM * 1e3)
+    az, _, _ = geod.inv(pts[k - 3, 0], pts[k - 3, 1], pts[k + 3, 0], pts[k + 3, 1])
+    lon2, lat2, _ = geod.fwd(victim["lon"], victim["lat"], az, 15e3)
+    moved = dict(victim, lon=float(lon2), lat=float(lat2), id="MOVED")
+    picks = [moved if r is victim else r for r in records]
+    build = basin_build(tmp_path, basin, records=picks, spacing=0.02, chunk=256,
+                        extra="")
+    text = build.read_text().replace('[grid]', 'magnetic_profiles = "tracks.csv"\n[grid]')
+    text += '[magnetic]\nfield_inclination = 55.0\nfield_declination = 12.0\n'
+    build.write_text(text)
+    assert main(["build", str(build), "--quiet"]) == 0
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    flagged = {p["id"]: p for p in manifest["magnetic"]["flagged_picks"]}
+    assert "MOVED" in flagged, manifest["magnetic"]["flagged_picks"][:5]
+    assert abs(abs(flagged["MOVED"]["error_km"]) - 15.0) <= 3.0, flagged["MOVED"]
+    assert set(flagged) == {"MOVED"}, sorted(flagged)
+    assert manifest["magnetic"]["picks_checked"] > 100
+    rows = list(csv.DictReader(open(tmp_path / "out" / "basin_tracks.csv")))
+    assert {"track", "lag_km", "median_age_offset_myr", "correlation", "flagged"} <= set(rows[0])
+    assert sum(int(r["flagged"]) for r in rows) == 1
+    assert any(f["id"] == "MOVED" and f["kind"] == "magnetic_mismatch" for f in manifest["qa"]["suspect_picks"])
