@@ -435,8 +435,11 @@ def _magnetic_check(config, inputs, ds, facts, staged, out_dir, spec) -> None:
         return
     m = config.magnetic
     ages, _ = date_picks(inputs["picks"], inputs["timescale"])
+    cell_km = spec.spacing * (111.19 if spec.geographic else 1e-3)
+    tolerance = max(m.tolerance_km, 1.5 * cell_km)  # the grid cannot place a boundary more finely
+    facts["magnetic"]["tolerance_km_used"] = round(tolerance, 3)
     tracks, picks = check_profiles(profiles, spec, predicted, ds["age"].values, ds["half_rate"].values,
-                                   inputs["picks"], ages, AlignmentSettings(m.tolerance_km, m.window_km,
+                                   inputs["picks"], ages, AlignmentSettings(tolerance, m.window_km,
                                                                             m.max_lag_km, m.min_correlation))
     buffer = io.StringIO()
     writer = csv.DictWriter(buffer, list(tracks[0]) if tracks else ["track"], lineterminator="\n")

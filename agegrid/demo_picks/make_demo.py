@@ -31,9 +31,39 @@ def _lines(features: list[np.ndarray], props: list[dict]) -> dict:
          "geometry": {"type": "LineString", "coordinates": np.round(f, 6).tolist()}} for f, p in zip(features, props)]}
 
 
+def write_profiles(profile: list[dict], scale) -> None:
+    """Survey profiles: the anomaly the true ages produce (agegrid's own forward model), with 8 nT noise."""
+    import dask
+    import dask.array as da
+
+    from agegrid.alignment import sample
+    from agegrid.grid import GridSpec
+    from agegrid.magnetic import MagneticSettings, anomaly_layer
+
+    spec = GridSpec(BASIN.region(0.5), 0.02, chunk=512)
+    lon, lat = spec.lonlat()
+    age = BASIN.age(lon, lat)
+    top = thermal.MODELS["gdh1"].depth(age)
+    with dask.config.set(scheduler="threads"):
+        anomaly = anomaly_layer(spec, da.from_array(age, chunks=spec.chunks), da.from_array(top, chunks=spec.chunks),
+                                scale, MagneticSettings(500.0, 5.0, 2020.0)).compute()
+    rng = np.random.default_rng(11)
+    plon = np.array([p["lon"] for p in profile])
+    plat = np.array([p["lat"] for p in profile])
+    values = sample(anomaly, spec, plon, plat) + rng.normal(0, 8.0, len(profile))
+    with open(HERE / "tracks.csv", "w", newline="") as fh:
+        fh.write("# Veyra Basin demo survey profiles (invented): total-field anomaly in nT\n")
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(["lon", "lat", "anomaly_nt", "track"])
+        for p, value in zip(profile, values):
+            if np.isfinite(value):
+                writer.writerow([round(p["lon"], 5), round(p["lat"], 5), round(float(value), 1), p["track"]])
+
+
 def main() -> None:
     scale = timescale.load("CK95")
-    picks = BASIN.survey(scale, tracks=28, noise_km=1.5, seed=20261201)
+    profile = []
+    picks = BASIN.survey(scale, tracks=28, noise_km=1.5, seed=20261201, profile=profile, profile_step=2)
     with open(HERE / "picks.csv", "w", newline="") as fh:
         fh.write("# Veyra Basin demo picks (invented): chron ends picked along 28 survey tracks\n")
         writer = csv.DictWriter(fh, ["id", "track", "lon", "lat", "chron", "edge", "sigma_km"], lineterminator="\n")
@@ -72,6 +102,7 @@ def main() -> None:
     xr.Dataset({"thickness": (("lat", "lon"), sediment.astype(np.float32),
                               {"long_name": "sediment thickness (invented)", "units": "m"})}, coords=coords).to_netcdf(
         HERE / "sediment.nc", encoding={"thickness": {"zlib": True}})
+    write_profiles(profile, scale)
     region = [float(v) for v in BASIN.region(0.5)]
     (HERE / "build.toml").write_text(f'''# Veyra Basin: the bundled demo of agegrid (an invented basin; see make_demo.py)
 name = "veyra-basin"
@@ -83,10 +114,11 @@ barriers = "fracture_zones.geojson"
 domain = "ocean.geojson"
 bathymetry = "bathymetry.nc"
 sediment = "sediment.nc"
+magnetic_profiles = "tracks.csv"
 
 [grid]
 region = {region}
-spacing = 0.05
+spacing = 0.025
 crs = "EPSG:4326"
 chunk = 256
 
@@ -97,6 +129,11 @@ max_extrapolation_myr = 5.0
 [depth]
 models = ["gdh1", "ps77", "hsc", "plate"]
 fit_age_range = [0.0, 16.0]
+
+[magnetic]
+layer_thickness_km = 0.5
+magnetisation = 5.0
+epoch = 2020.0
 
 [output]
 directory = "out"
