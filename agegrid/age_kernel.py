@@ -137,16 +137,25 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
                 out[FLANK, i, jj] = 1.0 if plus else -1.0
                 conj = np.nan
                 if not mirror:
-                    if plus:  # the minus side: ages fall from index 0 (oldest) to the ridge at r
-                        for m in range(r):
-                            if ages[to + m] >= age >= ages[to + m + 1]:
-                                conj = _pair_rate(V[vo:], ages[to:], m, m + 1, nc, j0, t, dw[lab], w)
-                                break
-                    else:
-                        for m in range(r, K - 1):
-                            if ages[to + m] <= age <= ages[to + m + 1]:
-                                conj = _pair_rate(V[vo:], ages[to:], m, m + 1, nc, j0, t, dw[lab], w)
-                                break
+                    # the other side's ages are monotone away from the ridge: binary search for the pair
+                    if plus and r > 0 and ages[to] >= age:  # minus side: ages fall from index 0 to r
+                        lo, hi = 0, r
+                        while hi - lo > 1:
+                            mid = (lo + hi) // 2
+                            if ages[to + mid] >= age:
+                                lo = mid
+                            else:
+                                hi = mid
+                        conj = _pair_rate(V[vo:], ages[to:], lo, lo + 1, nc, j0, t, dw[lab], w)
+                    elif not plus and r < K - 1 and ages[to + K - 1] >= age:  # plus side: ages rise from r
+                        lo, hi = r, K - 1
+                        while hi - lo > 1:
+                            mid = (lo + hi) // 2
+                            if ages[to + mid] <= age:
+                                lo = mid
+                            else:
+                                hi = mid
+                        conj = _pair_rate(V[vo:], ages[to:], lo, lo + 1, nc, j0, t, dw[lab], w)
                 if conj == conj and rate == rate:
                     out[FULL_RATE, i, jj] = rate + conj
                     out[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
