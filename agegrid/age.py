@@ -2,6 +2,8 @@
 
 For each compartment a local frame is fitted on the sphere: ``u`` runs along the great circle that
 best fits the compartment's ridge (or its longest isochron), ``v`` is the angular distance across it.
+The code works in the trigonometry-free equivalents ``w = tan u`` and ``s = sin v`` (dot products of
+unit vectors), which are monotone in ``u`` and ``v``.
 Every dated boundary (ridge, isochron line, the picks of one chron end) becomes a *trace* v(u) on each
 flank, resampled on a regular ``u`` axis: piecewise linear through its control, and continued along
 strike to the compartment's edge parallel to the next younger trace of its flank (the ridge is

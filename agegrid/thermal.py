@@ -31,6 +31,12 @@ def _heat_age(age) -> np.ndarray:
     return np.maximum(_age(age), MIN_HEAT_FLOW_AGE_MYR)
 
 
+def _sqrt_then_exponential(age, ridge, sqrt_coefficient, switch, asymptote, amplitude, decay) -> np.ndarray:
+    """The empirical depth form: ridge + c sqrt(t) before ``switch``, asymptote - A exp(-decay t) after."""
+    t = _age(age)
+    return np.where(t < switch, ridge + sqrt_coefficient * np.sqrt(t), asymptote - amplitude * np.exp(-decay * t))
+
+
 @dataclass(frozen=True)
 class CoolingModel:
     """Base of the cooling models: a name, a source and a table of parameters."""
@@ -213,10 +219,8 @@ class ParsonsSclater(CoolingModel):
     heat_flow_switch_age_myr: float = 120.0
 
     def depth(self, age):
-        t = _age(age)
-        young = self.ridge_depth_m + self.sqrt_coefficient_m * np.sqrt(t)
-        old = self.asymptotic_depth_m - self.exponential_amplitude_m * np.exp(-t / self.time_constant_myr)
-        return np.where(t < self.switch_age_myr, young, old)
+        return _sqrt_then_exponential(age, self.ridge_depth_m, self.sqrt_coefficient_m, self.switch_age_myr,
+                                      self.asymptotic_depth_m, self.exponential_amplitude_m, 1 / self.time_constant_myr)
 
     def heat_flow(self, age):
         t = _heat_age(age)
@@ -247,10 +251,8 @@ class SteinStein(CoolingModel):
     heat_flow_amplitude: float = 96.0
 
     def depth(self, age):
-        t = _age(age)
-        young = self.ridge_depth_m + self.sqrt_coefficient_m * np.sqrt(t)
-        old = self.asymptotic_depth_m - self.exponential_amplitude_m * np.exp(-self.decay_per_myr * t)
-        return np.where(t < self.switch_age_myr, young, old)
+        return _sqrt_then_exponential(age, self.ridge_depth_m, self.sqrt_coefficient_m, self.switch_age_myr,
+                                      self.asymptotic_depth_m, self.exponential_amplitude_m, self.decay_per_myr)
 
     def heat_flow(self, age):
         t = _heat_age(age)

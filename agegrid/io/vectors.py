@@ -36,17 +36,22 @@ def _coordinates(coords, path, where) -> np.ndarray:
     return array
 
 
+def _features(path, wanted: tuple[str, str], other: tuple[str, str], noun: str):
+    """(index, feature, geometry type, place) of each feature, refusing geometries of the wrong kind."""
+    for i, feature in enumerate(load_geojson(path)):
+        kind, where = feature["geometry"].get("type"), f"feature {i}"
+        if kind in other:
+            raise BadInput(f"expected {noun}, got a {kind}", path, where)
+        if kind not in wanted:
+            raise BadInput(f"expected {' or '.join(wanted)}, got {kind}", path, where)
+        yield i, feature, kind, where
+
+
 def read_lines(path: str | Path) -> list[LineFeature]:
     """Read the (Multi)LineString features of a GeoJSON file, one :class:`LineFeature` per part."""
     lines = []
-    for i, feature in enumerate(load_geojson(path)):
-        geometry, where = feature["geometry"], f"feature {i}"
-        kind = geometry.get("type")
-        if kind in POLYGON_TYPES:
-            raise BadInput(f"expected lines, got a {kind}", path, where)
-        if kind not in LINE_TYPES:
-            raise BadInput(f"expected LineString or MultiLineString, got {kind}", path, where)
-        parts = geometry.get("coordinates")
+    for i, feature, kind, where in _features(path, LINE_TYPES, POLYGON_TYPES, "lines"):
+        parts = feature["geometry"].get("coordinates")
         if not isinstance(parts, list):
             raise BadInput("missing coordinates", path, where)
         for part in ([parts] if kind == "LineString" else parts):
@@ -63,15 +68,9 @@ def read_polygons(path: str | Path):
     from shapely.ops import unary_union
 
     polygons = []
-    for i, feature in enumerate(load_geojson(path)):
-        geometry, where = feature["geometry"], f"feature {i}"
-        kind = geometry.get("type")
-        if kind in LINE_TYPES:
-            raise BadInput(f"expected polygons, got a {kind}", path, where)
-        if kind not in POLYGON_TYPES:
-            raise BadInput(f"expected Polygon or MultiPolygon, got {kind}", path, where)
+    for i, feature, kind, where in _features(path, POLYGON_TYPES, LINE_TYPES, "polygons"):
         try:
-            polygon = shape(geometry)
+            polygon = shape(feature["geometry"])
         except Exception as exc:  # shapely raises several types for malformed rings
             raise BadInput(f"invalid polygon: {exc}", path, where) from None
         if polygon.is_empty:
