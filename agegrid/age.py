@@ -241,7 +241,10 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
         side = np.sign(v - np.interp(col, cols, rv))
         flanks = (-1, 1)
     else:
-        ridge_trace, side, flanks = None, np.ones(len(v)), (1,)
+        # no ridge here: ages grow toward one side, which the control's own age-position trend tells
+        trend = np.polyfit(age, v, 1)[0] if np.ptp(age) > 0 else 1.0
+        orientation = 1 if trend >= 0 else -1
+        ridge_trace, side, flanks = None, np.full(len(v), orientation), (orientation,)
     for flank in flanks:
         previous = ridge_trace
         on = (side == flank) & ~ridge
@@ -272,9 +275,7 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
             traces.append((flank, t, int(b), V, D, float(np.median(sigma[sel]))))
             previous = traces[-1]
     if ridge_trace is None:
-        if len(traces) >= 2 and np.median(traces[-1][3]) < np.median(traces[0][3]):
-            traces = [(-1,) + tr[1:] for tr in traces]
-        ordered = traces if not traces or traces[0][0] > 0 else traces[::-1]
+        ordered = traces if flanks[0] > 0 else traces[::-1]
     else:
         minus = [tr for tr in traces if tr[0] < 0][::-1]
         plus = [tr for tr in traces if tr[0] > 0]

@@ -154,6 +154,32 @@ def rasterise_domain(spec, polygon) -> np.ndarray:
                      dtype="uint8").astype(bool)
 
 
+def implied_fracture_zones(ridges: list[np.ndarray], step_deg: float = 0.1) -> list[np.ndarray]:
+    """Short lines through each ridge segment's ends, normal to the ridge there, as (lon, lat) arrays.
+
+    With ``extend`` in :func:`build_compartments` they continue along their great circles across both
+    flanks: the fracture zones a ridge offset implies, used when no barriers are given (spreading is
+    taken as normal to the ridge at its ends).
+    """
+    lines = []
+    step = np.radians(step_deg)
+    for ridge in ridges:
+        xyz = sphere.to_xyz(ridge[:, 0], ridge[:, 1])
+        if len(xyz) < 2:
+            continue
+        for end, inner in ((xyz[0], xyz[1]), (xyz[-1], xyz[-2])):
+            tangent = end - inner
+            across = np.cross(end, tangent)
+            norm = np.linalg.norm(across)
+            if norm < 1e-15:
+                continue
+            across /= norm
+            pts = np.stack([np.cos(step) * end - np.sin(step) * across, end, np.cos(step) * end + np.sin(step) * across])
+            lon, lat = sphere.to_lonlat(pts)
+            lines.append(np.stack([lon, lat], -1))
+    return lines
+
+
 def build_compartments(spec, barriers: list[np.ndarray], domain_polygon=None, extend: bool = True) -> Compartments:
     """Label the compartments of a grid.
 

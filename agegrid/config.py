@@ -97,6 +97,7 @@ class Age(Section):
     pick_sigma_km: float = Field(2.0, gt=0)
     timescale_sigma_percent: float = Field(1.0, ge=0)
     extend_barriers: bool = True
+    implied_fracture_zones: bool = True
 
 
 class Picks(Section):

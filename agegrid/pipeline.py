@@ -24,7 +24,7 @@ from agegrid import __version__, thermal, timescale
 from agegrid.age import LAYERS, Settings, age_layers, build_age_model
 from agegrid.bathymetry import to_depth
 from agegrid.cache import BlockCache, fingerprint, up_to_date
-from agegrid.compartments import build_compartments
+from agegrid.compartments import build_compartments, implied_fracture_zones
 from agegrid.control import build_control
 from agegrid.errors import BadInput
 from agegrid.grid import GridSpec
@@ -152,8 +152,13 @@ def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[di
         control = build_control(inputs["picks"], scale, inputs["ridges"], step, inputs["isochrons"],
                                 config.inputs.isochrons, config.age.pick_sigma_km)
     with stages("compartments"):
-        comps = build_compartments(spec, [f.lonlat for f in inputs["barriers"]], inputs["domain"],
-                                   extend=config.age.extend_barriers)
+        barriers = [f.lonlat for f in inputs["barriers"]]
+        if not barriers and config.age.implied_fracture_zones:
+            barriers = implied_fracture_zones([f.lonlat for f in inputs["ridges"]])
+            facts["notes"].append(f"no barriers given: {len(barriers)} fracture zones implied at the ridge "
+                                  "segments' ends, normal to the ridge (age.implied_fracture_zones)")
+            log.info(facts["notes"][-1])
+        comps = build_compartments(spec, barriers, inputs["domain"], extend=config.age.extend_barriers)
         facts["compartments"] = comps.count
     with stages("age model"):
         model = build_age_model(spec, comps, control, _engine_settings(config))

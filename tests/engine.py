@@ -46,14 +46,17 @@ class EngineRun:
 
 def run_engine(tmp: Path, basin: SyntheticBasin | None = None, tracks: int = 60, seed: int = 1,
                spacing: float = 0.05, chunk: int = 512, noise_km: float = 1.5, scale: str = "CK95",
-               region=None, records=None, barriers=True) -> EngineRun:
+               region=None, records=None, barriers=True, implied=False) -> EngineRun:
     basin = basin or SyntheticBasin()
     ts = timescale.load(scale)
     if records is None:
         records = basin.survey(ts, tracks, noise_km=noise_km, seed=seed)
     picks = read_picks(write_picks(tmp / f"picks-{seed}-{tracks}.csv", records))
     spec = GridSpec(tuple(region or basin.region(0.5)), spacing, chunk=chunk)
-    comps = build_compartments(spec, basin.fracture_zones() if barriers else [], basin.domain_polygon())
+    from agegrid.compartments import implied_fracture_zones
+
+    lines = basin.fracture_zones() if barriers else (implied_fracture_zones(basin.ridges()) if implied else [])
+    comps = build_compartments(spec, lines, basin.domain_polygon())
     ridges = [LineFeature(i, r, {}) for i, r in enumerate(basin.ridges())]
     control = build_control(picks, ts, ridges, np.radians(spacing) / 2, default_sigma_km=max(noise_km, 0.5))
     model = build_age_model(spec, comps, control, Settings())

@@ -122,3 +122,25 @@ def test_great_circle_metric_against_pyproj():
         np.array([12.0, -175.0, 150.0]), np.array([6.5, -41.0, 85.0])
     _, _, dist = geod.inv(lon1, lat1, lon2, lat2)
     assert np.allclose(sphere.distance_km(lon1, lat1, lon2, lat2), dist / 1e3, rtol=1e-9)
+
+
+def test_region_without_the_ridge(tmp_path):
+    """Old crust only (the ridge lies outside the grid): ages still follow the isochron traces."""
+    basin = SyntheticBasin()
+    west, east, south, north = basin.region(0.5)
+    run = run_engine(tmp_path, basin, tracks=60, seed=1, spacing=0.1, region=(west, west + 0.35 * (east - west),
+                                                                              south, north))
+    s = scores(run.error)
+    assert s["rms"] <= 0.3 and s["p95"] <= 0.3, s
+    assert run.empty_fraction() <= 0.01
+
+
+def test_no_barriers_given_uses_implied_fracture_zones(tmp_path):
+    """Without barriers, fracture zones implied at the ridge segments' ends keep ages apart
+    (here spreading is normal to the ridges, so the implied lines are the true flow lines)."""
+    basin = SyntheticBasin()
+    implied = run_engine(tmp_path, basin, tracks=60, seed=1, spacing=0.1, barriers=False, implied=True)
+    none = run_engine(tmp_path, basin, tracks=60, seed=1, spacing=0.1, barriers=False, implied=False)
+    s = scores(implied.error)
+    assert s["p95"] <= 0.3 and s["rms"] <= 0.4, s
+    assert s["rms"] < 0.5 * scores(none.error)["rms"]
