@@ -361,7 +361,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                                 if name in NOT_IN_GEOTIFF or name == "crs":
                                     continue
                                 target = out_dir / f"{config.name}_{name}.tif"
-                                staged[target] = write_cog(written[name].data, target, spec, attrs[name])
+                                staged[target] = write_cog(staged_nc, name, target, attrs[name])
                     if "zarr" in config.output.formats:
                         from agegrid.io.zarr import write_zarr
 
