@@ -44,14 +44,19 @@ def rate_rows(compartment, flank, age, half_rate, full_rate, asymmetry, azimuth,
     return rows
 
 
-def rate_table(ds, band_myr: float) -> str:
-    """The rates CSV text for a built dataset."""
-    layers = {k: np.asarray(ds[k].values).ravel() for k in
-              ("compartment", "flank", "age", "half_rate", "full_rate", "asymmetry", "spreading_azimuth")}
+RATE_LAYERS = ("compartment", "flank", "age", "half_rate", "full_rate", "asymmetry", "spreading_azimuth")
+
+
+def rate_table(layers: dict, stride: int, band_myr: float) -> str:
+    """The rates CSV text from flattened layers read every ``stride``-th row and column (counts scaled)."""
     rows = rate_rows(layers["compartment"], layers["flank"], layers["age"], layers["half_rate"], layers["full_rate"],
                      layers["asymmetry"], layers["spreading_azimuth"], band_myr)
+    for row in rows:
+        row["cells"] *= stride**2
+        row["full_rate_cells"] *= stride**2
+        row["sampled_every"] = stride
     buffer = io.StringIO()
-    writer = csv.DictWriter(buffer, COLUMNS, lineterminator="\n")
+    writer = csv.DictWriter(buffer, COLUMNS + ("sampled_every",), lineterminator="\n")
     writer.writeheader()
     writer.writerows(rows)
     return buffer.getvalue()

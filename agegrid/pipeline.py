@@ -30,14 +30,14 @@ from agegrid.errors import BadInput
 from agegrid.grid import GridSpec
 from agegrid.io import atomic
 from agegrid.io.geotiff import write_cog
-from agegrid.io.netcdf import dataset, write_netcdf
+from agegrid.io.netcdf import dataset, limit_chunk_cache, write_netcdf
 from agegrid.io.points import read_picks
 from agegrid.io.rasters import read_grid
 from agegrid.io.vectors import read_lines, read_polygons
 from agegrid.alignment import AlignmentSettings, check_profiles
 from agegrid.control import date_picks
 from agegrid.io.profiles import read_profiles
-from agegrid.kinematics import rate_table
+from agegrid.kinematics import RATE_LAYERS, rate_table
 from agegrid.magnetic import MagneticSettings, anomaly_layer
 from agegrid.lock import BuildLock
 from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
@@ -54,6 +54,10 @@ log = logging.getLogger("agegrid")
 NOT_IN_GEOTIFF = ("age_bracket_young", "age_bracket_old", "age_fraction", "compartment")
 #: float32 layers held at once at the peak of a build, for the size check.
 LAYERS_IN_MEMORY = 6
+#: About the largest number of cells the tables (depth statistics, rates) read (medians of a million cells
+#: are exact to well within the noise); larger grids are read every k-th
+#: row and column, and the counts scaled by k squared.
+TABLE_CELLS = 1e6
 
 
 class Stages:
@@ -271,24 +275,34 @@ def _global_attrs(config, facts) -> dict:
     }
 
 
+def sampled(ds: xr.Dataset, names, max_cells: float = TABLE_CELLS) -> tuple[dict, int]:
+    """Flattened layers read every k-th row and column, k chosen so at most ``max_cells`` are read."""
+    ny, nx = ds["age"].shape
+    stride = max(1, int(np.ceil(np.sqrt(ny * nx / max_cells))))
+    return {n: np.asarray(ds[n][::stride, ::stride].values).ravel() for n in names if n in ds}, stride
+
+
 def _depth_tables(config, ds: xr.Dataset) -> tuple[str, dict]:
     """The age-binned residual statistics CSV and the sqrt(age) fit of corrected depth."""
-    age = ds["age"].values.ravel()
+    names = ["age", "observed_depth", "sediment_correction"] + [f"residual_{m}" for m in config.depth.models]
+    layers, stride = sampled(ds, names)
+    age = layers["age"]
     rows = []
     for name in config.depth.models:
-        if f"residual_{name}" in ds:
-            for row in binned_statistics(age, ds[f"residual_{name}"].values.ravel(), config.depth.age_bin_myr):
-                rows.append({"model": name, **row})
+        if f"residual_{name}" in layers:
+            for row in binned_statistics(age, layers[f"residual_{name}"], config.depth.age_bin_myr):
+                rows.append({"model": name, **row, "cells": row["cells"] * stride**2, "sampled_every": stride})
     buffer = io.StringIO()
-    writer = csv.DictWriter(buffer, ["model", "age_from_myr", "age_to_myr", "cells", "median_m", "iqr_m"],
-                            lineterminator="\n")
+    writer = csv.DictWriter(buffer, ["model", "age_from_myr", "age_to_myr", "cells", "median_m", "iqr_m",
+                                     "sampled_every"], lineterminator="\n")
     writer.writeheader()
     writer.writerows(rows)
     fit = None
-    if "observed_depth" in ds:
-        corrected = ds["observed_depth"].values + (ds["sediment_correction"].values if "sediment_correction" in ds
-                                                   else 0.0)
-        fit = fit_sqrt_age(age, np.asarray(corrected).ravel(), tuple(config.depth.fit_age_range))
+    if "observed_depth" in layers:
+        corrected = layers["observed_depth"] + layers.get("sediment_correction", 0.0)
+        fit = fit_sqrt_age(age, np.asarray(corrected), tuple(config.depth.fit_age_range))
+        if fit is not None:
+            fit["sampled_every"] = stride
         if fit is not None:
             fit["models"] = {}
             for name, model in _models(config).items():
@@ -326,6 +340,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
     """Run a whole build; returns the manifest. Outputs are replaced only when everything succeeded."""
     out_dir = Path(config.output.directory)
     out_dir.mkdir(parents=True, exist_ok=True)
+    limit_chunk_cache()
     with BuildLock(out_dir):
         removed = atomic.clean_stale(out_dir)
         if removed:
@@ -376,7 +391,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                             _magnetic_check(config, inputs, written, facts, staged, out_dir, spec)
                     with stages("rate table"):
                         target = out_dir / f"{config.name}_rates.csv"
-                        rates_text = rate_table(written, config.kinematics.age_band_myr)
+                        rates_text = rate_table(*sampled(written, RATE_LAYERS), config.kinematics.age_band_myr)
                         staged[target] = _stage_text(target, rates_text)
                 if config.inputs.bathymetry:
                     target = out_dir / f"{config.name}_depth_stats.csv"

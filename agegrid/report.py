@@ -116,10 +116,10 @@ def age_depth_plot(ds, models: dict, fit: dict | None) -> str:
     plt = _matplotlib()
     from agegrid.thermal import get_model
 
-    age = ds["age"].values.ravel()
-    depth = ds["observed_depth"].values.ravel()
-    if "sediment_correction" in ds:
-        depth = depth + np.nan_to_num(ds["sediment_correction"].values.ravel())
+    from agegrid.pipeline import sampled
+
+    layers, _ = sampled(ds, ("age", "observed_depth", "sediment_correction"), 1e6)
+    age, depth = layers["age"], layers["observed_depth"] + np.nan_to_num(layers.get("sediment_correction", 0.0))
     ok = np.isfinite(age) & np.isfinite(depth)
     fig, ax = plt.subplots(figsize=(7.5, 5))
     if ok.any():

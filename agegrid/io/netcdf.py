@@ -11,7 +11,20 @@ from agegrid.io.atomic import replace, staging_path
 
 CONVENTIONS = "CF-1.8"
 #: Encoding keys carried over from a variable read back from a file (the rest are reader details).
+CHUNK_CACHE_BYTES = 4 * 2**20
 KEPT_ENCODING = ("dtype", "_FillValue", "scale_factor", "add_offset", "zlib", "complevel", "shuffle", "chunksizes")
+
+
+def limit_chunk_cache() -> None:
+    """Cap HDF5's chunk cache for the files opened from now on.
+
+    HDF5 keeps a cache per variable (64 MB by default): with twenty layers written or read that alone
+    passes a gigabyte. Whole chunks are read and written in order here, so a small cache costs nothing.
+    """
+    import netCDF4
+
+    size, nelems, preemption = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(CHUNK_CACHE_BYTES, nelems, preemption)
 
 
 def coordinates(spec) -> dict:
@@ -94,16 +107,63 @@ def encoding(ds: xr.Dataset, spec) -> dict:
     return enc
 
 
-def write_netcdf(ds: xr.Dataset, target: Path, spec) -> Path:
-    """Write a dataset to a staged file beside ``target``; returns the staged path (not yet renamed)."""
+def write_netcdf(ds: xr.Dataset, target: Path, spec, window_mb: float = 256.0) -> Path:
+    """Write a dataset to a staged file beside ``target``; returns the staged path (not yet renamed).
+
+    xarray writes the file's structure, attributes and coordinates with the lazy layers replaced by
+    their fill value (constant blocks compress to almost nothing); the layers are then computed
+    window by window, a band of blocks at a time, and written with netCDF4. Layers that share a
+    computation (the age engine's blocks) are computed together, so memory stays bounded by the window.
+    """
+    import dask
+    import dask.array as da
+    import netCDF4
+
     staged = staging_path(target)
+    enc = encoding(ds, spec)
+    lazy = [n for n, v in ds.variables.items() if isinstance(v.data, da.Array) and v.ndim == 2]
+    template = ds.copy()
+    for name in lazy:
+        var = ds.variables[name]
+        fill = enc[name].get("_FillValue")
+        if fill is None:
+            fill = np.nan if var.dtype.kind == "f" else 0
+        data = da.full(var.shape, fill, dtype=var.dtype, chunks=var.data.chunks)
+        if name in template.coords:
+            template = template.assign_coords({name: (var.dims, data, var.attrs)})
+        else:
+            template[name] = xr.Variable(var.dims, data, var.attrs)
+        template.variables[name].encoding = var.encoding
+    limit_chunk_cache()
     try:
-        ds.to_netcdf(staged, engine="netcdf4", format="NETCDF4", encoding=encoding(ds, spec))
+        template.to_netcdf(staged, engine="netcdf4", format="NETCDF4", encoding=enc)
+        if lazy:
+            ny, nx = spec.shape
+            rows, cols = spec.chunks
+            per_cell = sum(ds.variables[n].dtype.itemsize for n in lazy) + 8 * 12
+            width = int(max(cols, min(nx, window_mb * 2**20 / (rows * per_cell) // cols * cols)))
+            with netCDF4.Dataset(staged, "a") as nc:
+                for name in lazy:
+                    nc[name].set_auto_maskandscale(False)
+                for r0 in range(0, ny, rows):
+                    for c0 in range(0, nx, width):
+                        window = (slice(r0, min(r0 + rows, ny)), slice(c0, min(c0 + width, nx)))
+                        values = dask.compute(*[ds.variables[n].data[window] for n in lazy])
+                        for name, block in zip(lazy, values):
+                            nc[name][window] = _encoded(block, enc[name])
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             staged.unlink()
         raise
     return staged
+
+
+def _encoded(block: np.ndarray, enc: dict) -> np.ndarray:
+    """Values as stored: cast to the on-disk type, with NaN in integer layers written as the fill value."""
+    dtype = np.dtype(enc.get("dtype", block.dtype))
+    if dtype.kind in "iu" and block.dtype.kind == "f":
+        block = np.where(np.isnan(block), enc.get("_FillValue", 0), block)
+    return block.astype(dtype, copy=False)
 
 
 __all__ = ["dataset", "encoding", "write_netcdf", "replace"]
