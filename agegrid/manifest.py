@@ -50,8 +50,18 @@ def versions() -> dict:
 
 
 def peak_memory_mb() -> dict:
-    """Peak resident memory of this process and of its finished children (MB)."""
+    """Peak resident memory of this process and of its finished children (MB).
+
+    The process's own figure is the kernel's high-water mark (VmHWM in /proc/self/status) where there is
+    one: unlike ``ru_maxrss`` it starts afresh at exec, so a parent's size does not leak into it.
+    """
     me = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                me = int(line.split()[1]) / 1024
+    except OSError:
+        pass
     kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     return {"process": round(me, 1), "children": round(kids, 1)}
 

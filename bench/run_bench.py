@@ -95,9 +95,11 @@ def write_bathymetry(path: Path, basin: SyntheticBasin, spec: GridSpec) -> None:
 
 def whole_build(folder: Path, runs: int) -> dict:
     """`agegrid build --force` in fresh processes; median wall time, stage timings, peak memory."""
-    code = ("import resource, sys, time; from agegrid.cli import main; t = time.perf_counter(); "
-            "rc = main(['build', sys.argv[1], '--force', '--quiet']); "
-            "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, rc)")
+    # peak memory from the kernel's high-water mark (VmHWM), which starts afresh at exec; ru_maxrss would
+    # carry this benchmark's own size over into the child
+    code = ("import sys, time; from agegrid.cli import main; from agegrid.manifest import peak_memory_mb; "
+            "t = time.perf_counter(); rc = main(['build', sys.argv[1], '--force', '--quiet']); "
+            "print(time.perf_counter() - t, peak_memory_mb()['process'], rc)")
     walls, peaks, stages = [], [], []
     for _ in range(runs):
         out = subprocess.run([sys.executable, "-c", code, str(folder / "build.toml")], capture_output=True,
