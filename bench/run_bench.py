@@ -7,7 +7,7 @@ same way; accuracy of both against the true ages (all cells and cells within 0.5
 zone); then whole builds (`agegrid build`, three cooling models, bathymetry, NetCDF and a COG per layer)
 in a fresh process each, with per-stage timings from the manifest and the process's peak memory.
 
-    python bench/run_bench.py [--sizes 0.1,0.025] [--repeats 5] [--builds 3] [--large]
+    python bench/run_bench.py [--sizes 0.1,0.025] [--repeats 5] [--builds 3] [--large] [--magnetic]
 
 Results are printed and written to bench/results/bench-<time>.json. The machine is noisy: read the
 ratios and medians, not single timings.
@@ -128,6 +128,7 @@ def main(argv=None) -> int:
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--builds", type=int, default=3)
     parser.add_argument("--large", action="store_true", help="add a grid of 16x the cells of the last size")
+    parser.add_argument("--magnetic", action="store_true", help="include the magnetic model in the builds")
     args = parser.parse_args(argv)
     spacings = [float(s) for s in args.sizes.split(",")]
     if args.large:
@@ -149,8 +150,11 @@ def main(argv=None) -> int:
             _, plat = basin.to_pole_frame(lon, lat)
             near = np.min(np.abs(plat[..., None] - np.array(basin.bands[1:-1])), axis=-1) < 0.5
             folder = tmp / f"build-{spacing}"
+            extra = '[depth]\nmodels = ["gdh1", "ps77", "hsc"]\n'
+            if args.magnetic:
+                extra += "[magnetic]\nfield_inclination = 30.0\nfield_declination = 5.0\n"
             basin_build(folder, basin, records=records, spacing=spacing, chunk=512, formats=("netcdf", "geotiff"),
-                        extra='[depth]\nmodels = ["gdh1", "ps77", "hsc"]\n')
+                        extra=extra)
             text = (folder / "build.toml").read_text().replace('[grid]', 'bathymetry = "bathymetry.nc"\n[grid]')
             (folder / "build.toml").write_text(text)
             write_bathymetry(folder / "bathymetry.nc", basin, spec)
