@@ -388,7 +388,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                         facts["depth_fit"] = fit
                     if magnetic_enabled(config):
                         with stages("magnetic check"):
-                            _magnetic_check(config, inputs, written, facts, staged, out_dir, spec)
+                            magnetic_check(config, inputs, written, facts, staged, out_dir, spec)
                     with stages("rate table"):
                         target = out_dir / f"{config.name}_rates.csv"
                         rates_text = rate_table(*sampled(written, RATE_LAYERS), config.kinematics.age_band_myr)
@@ -438,8 +438,11 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         return manifest
 
 
-def _magnetic_check(config, inputs, ds, facts, staged, out_dir, spec) -> None:
-    """Correlation per compartment against an observed grid; picks checked along survey profiles."""
+def magnetic_check(config, inputs, ds, facts, staged, out_dir, spec) -> None:
+    """Correlation per compartment against an observed grid; picks checked along survey profiles.
+
+    Findings go into ``facts`` (and the QA's suspect picks); with ``staged`` the tracks CSV is staged too.
+    """
     predicted = ds["magnetic_anomaly_predicted"].values
     if "magnetic_residual" in ds:
         observed = ds["magnetic_residual"].values + predicted
@@ -465,8 +468,9 @@ def _magnetic_check(config, inputs, ds, facts, staged, out_dir, spec) -> None:
     writer = csv.DictWriter(buffer, list(tracks[0]) if tracks else ["track"], lineterminator="\n")
     writer.writeheader()
     writer.writerows(tracks)
-    target = out_dir / f"{config.name}_tracks.csv"
-    staged[target] = _stage_text(target, buffer.getvalue())
+    if staged is not None:
+        target = out_dir / f"{config.name}_tracks.csv"
+        staged[target] = _stage_text(target, buffer.getvalue())
     flagged = [p for p in picks if p["flagged"]]
     facts["magnetic"]["picks_checked"] = len(picks)
     facts["magnetic"]["flagged_picks"] = flagged

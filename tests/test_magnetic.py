@@ -185,3 +185,12 @@ def test_profile_check_flags_a_moved_pick(tmp_path):
     assert {"track", "lag_km", "median_age_offset_myr", "correlation", "flagged"} <= set(rows[0])
     assert sum(int(r["flagged"]) for r in rows) == 1
     assert any(f["id"] == "MOVED" and f["kind"] == "magnetic_mismatch" for f in manifest["qa"]["suspect_picks"])
+    # agegrid validate runs the same check without writing anything
+    import io
+    from contextlib import redirect_stdout
+
+    buffer = io.StringIO()
+    with redirect_stdout(buffer):
+        assert main(["validate", str(build), "--quiet"]) == 0
+    report = json.loads(buffer.getvalue())
+    assert [f["id"] for f in report["qa"]["suspect_picks"] if f["kind"] == "magnetic_mismatch"] == ["MOVED"]
