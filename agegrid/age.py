@@ -133,7 +133,7 @@ class AgeModel:
 def _binned(col: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Mean position per integer column of the control of one trace, sorted along strike."""
     key = np.rint(col).astype(np.int64)
-    uniq, inverse = np.unique(key, return_inverse=True)
+    _, inverse = np.unique(key, return_inverse=True)
     count = np.bincount(inverse)
     return np.bincount(inverse, col) / count, np.bincount(inverse, v) / count
 

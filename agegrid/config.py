@@ -16,9 +16,6 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from agegrid.errors import BadInput
 
-FORMATS = ("netcdf", "geotiff", "zarr")
-
-
 class Section(BaseModel):
     """A table of the build file: unknown keys are refused."""
 

@@ -39,11 +39,6 @@ class Boundaries:
             self.ages.append(float(age))
         return self._where[label]
 
-    @property
-    def chron_based(self) -> bool:
-        """True when every boundary but the ridge is a chron end (the grid can be retimed)."""
-        return all(not lab.startswith("age:") for lab in self.labels)
-
 
 @dataclass
 class ControlSet:

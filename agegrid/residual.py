@@ -33,7 +33,7 @@ def fit_sqrt_age(age: np.ndarray, depth: np.ndarray, age_range: tuple[float, flo
         return None
     x, y = np.sqrt(age[ok]), depth[ok]
     design = np.stack([np.ones_like(x), x], -1)
-    coef, res, rank, _ = np.linalg.lstsq(design, y, rcond=None)
+    coef = np.linalg.lstsq(design, y, rcond=None)[0]
     dof = max(1, len(y) - 2)
     resid = y - design @ coef
     s2 = float(resid @ resid) / dof

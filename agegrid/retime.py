@@ -16,8 +16,13 @@ KEPT = ("age", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_
         "half_rate", "spreading_azimuth", "compartment", "flank", "crs")
 
 
-def boundary_ages(labels: list[str], scale, source=None) -> tuple[np.ndarray, list[str]]:
-    """Ages of boundary labels in a timescale, and warnings for labels whose meaning differs."""
+def boundary_ages(labels: list[str], scale, source=None, named_in=None) -> tuple[np.ndarray, list[str]]:
+    """Ages of boundary labels in a timescale, and warnings for labels whose meaning differs.
+
+    A chron end means the boundary between two intervals; when the timescale the grid was built in
+    (``named_in``) puts other intervals on either side of it than ``scale`` does (CK95's C1r.2r ends at
+    C2n, GTS2012's at C1r.2n), the label is retimed as ``scale`` defines it, with a warning.
+    """
     ages, warnings = [], []
     for label in labels:
         if label == RIDGE_LABEL:
@@ -31,6 +36,15 @@ def boundary_ages(labels: list[str], scale, source=None) -> tuple[np.ndarray, li
             ages.append(scale.boundary(chron, edge))
         except KeyError as exc:
             raise BadInput(f"boundary {label}: {exc.args[0]}", source, "age_bracket_young.boundary_labels") from None
+        if named_in is not None:
+            try:
+                before = named_in.neighbours(chron, edge)
+            except KeyError:
+                continue
+            after = scale.neighbours(chron, edge)
+            if before != after:
+                warnings.append(f"{label} lies between {before[0]} and {before[1]} in {named_in.name} but between "
+                                f"{after[0]} and {after[1]} in {scale.name}: retimed as {scale.name} defines it")
     return np.asarray(ages), warnings
 
 
@@ -41,7 +55,11 @@ def retime_dataset(ds: xr.Dataset, scale, source=None) -> tuple[xr.Dataset, list
             raise BadInput(f"not an agegrid age grid: variable {name!r} is missing", source)
     labels = ds["age_bracket_young"].attrs.get("boundary_labels", "").split()
     old_ages = np.asarray(ds["age_bracket_young"].attrs.get("boundary_ages_ma"), dtype=float)
-    new_ages, warnings = boundary_ages(labels, scale, source)
+    from agegrid import timescale as timescales
+
+    built_in = str(ds.attrs.get("timescale", "")).upper()
+    named_in = timescales.load(built_in) if built_in in timescales.BUNDLED else None
+    new_ages, warnings = boundary_ages(labels, scale, source, named_in)
     young = ds["age_bracket_young"].fillna(-1).values.astype(np.int64)
     older = ds["age_bracket_old"].fillna(-1).values.astype(np.int64)
     frac = ds["age_fraction"].values.astype(np.float64)

@@ -44,7 +44,6 @@ def attributes(name: str) -> dict:
     """CF attributes of an output variable, including the per-model families."""
     if name in STATIC:
         return dict(STATIC[name])
-    family, _, model = name.rpartition("_")
     if name.startswith("depth_"):
         return {"long_name": f"depth predicted by cooling model {name[6:]}, positive down", "units": "m"}
     if name.startswith("heat_flow_"):

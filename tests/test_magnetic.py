@@ -111,7 +111,7 @@ def test_series_handles_an_uneven_top():
 
 
 def test_dipole_inclination():
-    # tan I = 2 tan(latitude) for a geocentric axial dipole (e.g. Butler 1992, Paleomagnetism, eq. 1.8)
+    # tan I = 2 tan(latitude) for a geocentric axial dipole (Butler 1992, Paleomagnetism; equation number from memory)
     assert dipole_inclination(0.0) == 0.0
     assert dipole_inclination(45.0) == pytest.approx(np.degrees(np.arctan(2.0)))
     assert dipole_inclination(-30.0) == pytest.approx(-np.degrees(np.arctan(2 * np.tan(np.radians(30)))))

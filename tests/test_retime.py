@@ -42,3 +42,13 @@ def test_retime_refuses_age_ma_grids(tmp_path, capsys):
                  str(tmp_path / "r.nc"), "--quiet"]) == 2
     assert "cannot be retimed" in capsys.readouterr().err
     assert not (tmp_path / "r.nc").exists()
+
+
+def test_labels_that_mean_other_boundaries_are_warned():
+    """CK95's C1r.2r ends at C2n, GTS2012's at C1r.2n (shared/timescales/README.md caveats)."""
+    from agegrid.retime import boundary_ages
+
+    ages, warnings = boundary_ages(["ridge", "C1r.2r:old", "C5n.2n:old"], timescale.load("GTS2012"),
+                                   named_in=timescale.load("CK95"))
+    assert ages[1] == timescale.load("GTS2012").boundary("C1r.2r", "old")
+    assert len(warnings) == 1 and "C1r.2r:old" in warnings[0] and "C2n" in warnings[0]

@@ -9,7 +9,7 @@ import csv
 import io
 import json
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -20,8 +20,6 @@ from agegrid.io.text import read_text
 #: Oldest age accepted in a pick table (Ma): older than any oceanic crust (about 200 Ma, common
 #: practice) with a margin.
 MAX_AGE_MA = 250.0
-
-OPTIONAL = ("id", "track", "sigma_km", "flank", "corridor", "edge", "chron", "age_ma")
 
 
 @dataclass
@@ -45,7 +43,6 @@ class PickTable:
     sigma_km: np.ndarray
     flank: list[str]
     geojson: bool = False
-    extra: dict = field(default_factory=dict)
 
     def __len__(self) -> int:
         return len(self.lon)
