@@ -29,8 +29,8 @@ from agegrid.control import build_control
 from agegrid.errors import BadInput
 from agegrid.grid import GridSpec
 from agegrid.io import atomic
-from agegrid.io.geotiff import write_cog
-from agegrid.io.netcdf import dataset, limit_chunk_cache, write_netcdf
+from agegrid.io.geotiff import CogWriter
+from agegrid.io.netcdf import dataset, encoding, limit_chunk_cache, write_netcdf
 from agegrid.io.points import read_picks
 from agegrid.io.rasters import read_grid
 from agegrid.io.vectors import read_lines, read_polygons
@@ -46,6 +46,7 @@ from agegrid.qa import check_picks
 from agegrid.report import build_report
 from agegrid.residual import binned_statistics, fit_sqrt_age, residual
 from agegrid.sediment import lithology_from_config
+from agegrid.streaming import Samples
 from agegrid.variables import attributes
 
 log = logging.getLogger("agegrid")
@@ -275,17 +276,25 @@ def _global_attrs(config, facts) -> dict:
     }
 
 
-def sampled(ds: xr.Dataset, names, max_cells: float = TABLE_CELLS) -> tuple[dict, int]:
-    """Flattened layers read every k-th row and column, k chosen so at most ``max_cells`` are read."""
-    ny, nx = ds["age"].shape
-    stride = max(1, int(np.ceil(np.sqrt(ny * nx / max_cells))))
-    return {n: np.asarray(ds[n][::stride, ::stride].values).ravel() for n in names if n in ds}, stride
+def _sampled_layers(config) -> tuple:
+    """The layers the tables and the report read from the samples."""
+    names = {"age", "age_uncertainty", "half_rate", "observed_depth", "sediment_correction",
+             "magnetic_anomaly_predicted", *RATE_LAYERS}
+    return tuple(sorted(names | {f"residual_{m}" for m in config.depth.models}))
 
 
-def _depth_tables(config, ds: xr.Dataset) -> tuple[str, dict]:
-    """The age-binned residual statistics CSV and the sqrt(age) fit of corrected depth."""
+def _cog_writer(config, ds: xr.Dataset, spec, attrs: dict, out_dir: Path) -> CogWriter:
+    """The GeoTIFF sources of every layer written as a COG, with the NetCDF's types and fill values."""
+    enc = encoding(ds, spec)
+    names = [n for n in ds.data_vars if n not in NOT_IN_GEOTIFF and n != "crs"]
+    return CogWriter(spec, {n: out_dir / f"{config.name}_{n}.tif" for n in names}, attrs,
+                     {n: ds[n].dtype for n in names}, {n: enc[n]["_FillValue"] for n in names})
+
+
+def _depth_tables(config, sample: xr.Dataset, stride: int) -> tuple[str, dict]:
+    """The age-binned residual statistics CSV and the sqrt(age) fit of corrected depth, from the samples."""
     names = ["age", "observed_depth", "sediment_correction"] + [f"residual_{m}" for m in config.depth.models]
-    layers, stride = sampled(ds, names)
+    layers = {n: sample[n].values.ravel() for n in names if n in sample}
     age = layers["age"]
     rows = []
     for name in config.depth.models:
@@ -360,39 +369,43 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         layers, attrs, facts = compute_layers(config, inputs, stages, cache)
         spec = GridSpec.from_config(config.grid)
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
+        samples = Samples(spec, _sampled_layers(config), TABLE_CELLS)
         staged: dict[Path, Path] = {}
+        cogs = None
         try:
             with scheduler(address, workers) as sched:
                 nc_target = out_dir / f"{config.name}.nc"
-                with stages("write netcdf"), _progress(progress and sched["kind"] == "threads"):
-                    staged_nc = write_netcdf(ds, nc_target, spec)
+                sinks = [samples]
+                if "geotiff" in config.output.formats:
+                    cogs = _cog_writer(config, ds, spec, attrs, out_dir)
+                    sinks.append(cogs.write)
+                with stages("compute and write netcdf"), _progress(progress and sched["kind"] == "threads"):
+                    staged_nc = write_netcdf(ds, nc_target, spec, sinks)
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
-                written = xr.open_dataset(staged_nc, chunks={}, mask_and_scale=True)
-                with written:
-                    if "geotiff" in config.output.formats:
-                        with stages("write geotiff"):
-                            for name in ds.data_vars:
-                                if name in NOT_IN_GEOTIFF or name == "crs":
-                                    continue
-                                target = out_dir / f"{config.name}_{name}.tif"
-                                staged[target] = write_cog(staged_nc, name, target, attrs[name])
-                    if "zarr" in config.output.formats:
-                        from agegrid.io.zarr import write_zarr
+                if cogs is not None:
+                    with stages("write geotiff"):
+                        staged.update(cogs.finish())
+                sample = samples.dataset(ds)
+                with stages("depth statistics"):
+                    table, fit = _depth_tables(config, sample, samples.stride)
+                    facts["depth_fit"] = fit
+                with stages("rate table"):
+                    target = out_dir / f"{config.name}_rates.csv"
+                    flat = {n: sample[n].values.ravel() for n in RATE_LAYERS}
+                    rates_text = rate_table(flat, samples.stride, config.kinematics.age_band_myr)
+                    staged[target] = _stage_text(target, rates_text)
+                if "zarr" in config.output.formats or magnetic_enabled(config):
+                    with xr.open_dataset(staged_nc, chunks={}, mask_and_scale=True) as written:
+                        if "zarr" in config.output.formats:
+                            from agegrid.io.zarr import write_zarr
 
-                        with stages("write zarr"):
-                            target = out_dir / f"{config.name}.zarr"
-                            staged[target] = write_zarr(written, target, spec)
-                    with stages("depth statistics"):
-                        table, fit = _depth_tables(config, written)
-                        facts["depth_fit"] = fit
-                    if magnetic_enabled(config):
-                        with stages("magnetic check"):
-                            magnetic_check(config, inputs, written, facts, staged, out_dir, spec)
-                    with stages("rate table"):
-                        target = out_dir / f"{config.name}_rates.csv"
-                        rates_text = rate_table(*sampled(written, RATE_LAYERS), config.kinematics.age_band_myr)
-                        staged[target] = _stage_text(target, rates_text)
+                            with stages("write zarr"):
+                                target = out_dir / f"{config.name}.zarr"
+                                staged[target] = write_zarr(written, target, spec)
+                        if magnetic_enabled(config):
+                            with stages("magnetic check"):
+                                magnetic_check(config, inputs, written, facts, staged, out_dir, spec)
                 if config.inputs.bathymetry:
                     target = out_dir / f"{config.name}_depth_stats.csv"
                     staged[target] = _stage_text(target, table)
@@ -412,8 +425,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
             if config.output.report:
                 with stages("report"):
                     target = out_dir / "report.html"
-                    with xr.open_dataset(staged_nc) as ds:
-                        page = build_report(ds, manifest, rates_text, table if config.inputs.bathymetry else None)
+                    page = build_report(sample, manifest, rates_text, table if config.inputs.bathymetry else None)
                     staged[target] = _stage_text(target, page)
                 manifest["outputs"].append({"path": str(target), **{k: v for k, v in describe_file(
                     staged[target]).items() if k != "path"}})
@@ -426,6 +438,8 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
             staged.clear()
             cache.prune()
         finally:
+            if cogs is not None:
+                cogs.close()
             for source in staged.values():
                 if source.is_dir():
                     import shutil

@@ -18,6 +18,7 @@ from agegrid import sphere
 from agegrid.notices import CAUTION
 
 MAX_PIXELS = 900  # map rasters are decimated to at most this many cells a side
+MAX_POINTS = 1e6  # the age-depth plot reads at most about this many cells
 
 
 def _matplotlib():
@@ -92,8 +93,11 @@ def map_plot(ds, name, title, cmap, label, overlays=None, diverging=False) -> st
     if diverging and np.isfinite(values).any():
         span = float(np.nanpercentile(np.abs(values), 98)) or 1.0
         norm = TwoSlopeNorm(vcenter=0.0, vmin=-span, vmax=span)
-    mesh = ax.pcolormesh(x, y, np.ma.masked_invalid(values), cmap=cmap, norm=norm, shading="nearest",
-                         rasterized=True)
+    dx = float(x[1] - x[0]) if len(x) > 1 else 1.0
+    dy = float(y[1] - y[0]) if len(y) > 1 else 1.0
+    extent = (x[0] - dx / 2, x[-1] + dx / 2, y[-1] + dy / 2, y[0] - dy / 2)  # cell edges, first row on top
+    mesh = ax.imshow(np.ma.masked_invalid(values), cmap=cmap, norm=norm, extent=extent, origin="upper",
+                     interpolation="nearest")
     fig.colorbar(mesh, ax=ax, label=label, shrink=0.85)
     for overlay in overlays or []:
         overlay(ax)
@@ -116,9 +120,9 @@ def age_depth_plot(ds, models: dict, fit: dict | None) -> str:
     plt = _matplotlib()
     from agegrid.thermal import get_model
 
-    from agegrid.pipeline import sampled
-
-    layers, _ = sampled(ds, ("age", "observed_depth", "sediment_correction"), 1e6)
+    step = max(1, int(np.ceil(np.sqrt(ds["age"].size / MAX_POINTS))))
+    layers = {n: np.asarray(ds[n][::step, ::step].values, dtype=float).ravel()
+              for n in ("age", "observed_depth", "sediment_correction") if n in ds}
     age, depth = layers["age"], layers["observed_depth"] + np.nan_to_num(layers.get("sediment_correction", 0.0))
     ok = np.isfinite(age) & np.isfinite(depth)
     fig, ax = plt.subplots(figsize=(7.5, 5))

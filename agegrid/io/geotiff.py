@@ -1,46 +1,99 @@
-"""Cloud-Optimized GeoTIFFs, one per output layer, copied by GDAL straight from the written NetCDF.
+"""Cloud-Optimized GeoTIFFs, one per output layer, made by GDAL from sources streamed during the build.
 
-GDAL reads the NetCDF layer block by block (its CF grid mapping gives the CRS, its fill value the
-nodata); an in-memory VRT carries the band description and attributes, which must be set before the
-COG is made (GDAL refuses to edit a finished COG); the COG driver then writes tiles, overviews and
-deflate compression with its cache capped, so memory stays bounded whatever the grid size.
+While the layers are computed window by window, each layer's blocks go into an uncompressed tiled
+GeoTIFF beside the target (:class:`CogWriter`), with its band description, units and attributes set
+(GDAL refuses to edit a finished COG). GDAL's COG driver then copies every source to a COG (tiles,
+overviews, deflate compression), several layers at a time, with its cache capped, so memory stays
+bounded whatever the grid size; the sources are removed.
 """
 from __future__ import annotations
 
 import contextlib
-import uuid
+import os
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
+import numpy as np
 import rasterio
 import rasterio.shutil
+from rasterio.windows import Window
 
 from agegrid.io.atomic import staging_path
 
 BLOCK = 256
 CACHE_MB = 256
+#: Deflate level of the COGs: level 1 makes files within 1 % of the default level 6's size, 1.6x faster.
+DEFLATE_LEVEL = 1
 
 
-def write_cog(netcdf: Path, name: str, target: Path, attrs: dict) -> Path:
-    """Write the NetCDF variable ``name`` as a COG staged beside ``target``; returns the staged path."""
-    staged = staging_path(target)
-    vrt = f"/vsimem/agegrid-{uuid.uuid4().hex}.vrt"
-    integer = str(attrs.get("units", "")) == "1" or "flag_values" in attrs
-    try:
+class CogWriter:
+    """Streams layers into GeoTIFF sources, then turns each into a COG staged beside its target."""
+
+    def __init__(self, spec, targets: dict[str, Path], attrs: dict, dtypes: dict, fills: dict):
+        self.targets, self.attrs, self.fills = targets, attrs, fills
+        self.sources: dict[str, Path] = {}
+        self.open: dict = {}
+        crs = rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
+        ny, nx = spec.shape
+        for name, target in targets.items():
+            source = staging_path(target.with_suffix(".source.tif"))
+            self.sources[name] = source
+            with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
+                band = rasterio.open(source, "w", driver="GTiff", width=nx, height=ny, count=1,
+                                     dtype=np.dtype(dtypes[name]).name, crs=crs, transform=spec.transform,
+                                     nodata=fills[name], tiled=True, blockxsize=BLOCK, blockysize=BLOCK,
+                                     BIGTIFF="IF_SAFER")
+            layer_attrs = attrs[name]
+            band.set_band_description(1, str(layer_attrs.get("long_name", name)))
+            band.update_tags(1, **{k: str(v) for k, v in layer_attrs.items()})
+            if layer_attrs.get("units"):
+                band.set_band_unit(1, str(layer_attrs["units"]))
+            self.open[name] = band
+
+    def write(self, name: str, r0: int, c0: int, block: np.ndarray) -> None:
+        """Write a window of layer ``name`` whose top-left cell is (r0, c0)."""
+        band = self.open.get(name)
+        if band is None:
+            return
+        fill = self.fills[name]
+        if block.dtype.kind == "f" and np.dtype(band.dtypes[0]).kind in "iu":
+            block = np.where(np.isnan(block), fill, block)
         with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
-            rasterio.shutil.copy(f'NETCDF:"{netcdf}":{name}', vrt, driver="VRT")
-            with rasterio.open(vrt, "r+") as band:
-                band.set_band_description(1, str(attrs.get("long_name", name)))
-                band.update_tags(1, **{k: str(v) for k, v in attrs.items()})
-                if attrs.get("units"):
-                    band.set_band_unit(1, str(attrs["units"]))
-            rasterio.shutil.copy(vrt, staged, driver="COG", COMPRESS="DEFLATE", BLOCKSIZE=BLOCK, OVERVIEWS="AUTO",
-                                 RESAMPLING="NEAREST" if integer else "AVERAGE", BIGTIFF="IF_SAFER",
-                                 NUM_THREADS="ALL_CPUS")
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            staged.unlink()
-        raise
-    finally:
-        with contextlib.suppress(Exception):
-            rasterio.shutil.delete(vrt, driver="VRT")
-    return staged
+            band.write(block.astype(band.dtypes[0], copy=False), 1,
+                       window=Window(c0, r0, block.shape[1], block.shape[0]))
+
+    def finish(self, threads: int | None = None) -> dict[Path, Path]:
+        """Close the sources and make the COGs; returns {target: staged COG}."""
+        for band in self.open.values():
+            band.close()
+        self.open.clear()
+        with ThreadPoolExecutor(threads or os.cpu_count() or 1) as pool:
+            staged = dict(zip(self.targets.values(), pool.map(self._cog, self.targets)))
+        self.close()
+        return staged
+
+    def _cog(self, name: str) -> Path:
+        target, source = self.targets[name], self.sources[name]
+        staged = staging_path(target)
+        integer = str(self.attrs[name].get("units", "")) == "1" or "flag_values" in self.attrs[name]
+        try:
+            with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
+                rasterio.shutil.copy(source, staged, driver="COG", COMPRESS="DEFLATE", BLOCKSIZE=BLOCK, OVERVIEWS="AUTO",
+                                     RESAMPLING="NEAREST" if integer else "AVERAGE", BIGTIFF="IF_SAFER",
+                                     LEVEL=DEFLATE_LEVEL, NUM_THREADS=1)
+        except BaseException:
+            with contextlib.suppress(FileNotFoundError):
+                staged.unlink()
+            raise
+        finally:
+            source.unlink(missing_ok=True)
+        return staged
+
+    def close(self) -> None:
+        """Close and remove whatever sources are left (also after a failure)."""
+        for band in self.open.values():
+            with contextlib.suppress(Exception):
+                band.close()
+        self.open.clear()
+        for source in self.sources.values():
+            source.unlink(missing_ok=True)

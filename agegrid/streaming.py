@@ -1,0 +1,96 @@
+"""One pass over the grid by windows: every lazy layer computed once per window and handed to sinks.
+
+A window is a band of block rows (as many block columns as fit ``WINDOW_MB``). The layers of a window
+are computed together (layers sharing a computation, like the age engine's blocks, compute it once);
+while the sinks (NetCDF chunks, GeoTIFF sources, table samples) consume one window in a background
+thread, the next is computed, so writing overlaps computing and at most two windows are in memory.
+"""
+from __future__ import annotations
+
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+import xarray as xr
+
+#: Memory of one window's layers (all layers together), MB.
+WINDOW_MB = 128.0
+
+#: A sink takes (layer name, first row, first column, block) for every layer of every window.
+Sink = Callable[[str, int, int, np.ndarray], None]
+
+
+def windows(spec, bytes_per_cell: int, window_mb: float = WINDOW_MB):
+    """Row and column slices of the windows, aligned on the grid's blocks, in row-major order."""
+    ny, nx = spec.shape
+    rows, cols = spec.chunks
+    width = int(max(cols, min(nx, window_mb * 2**20 / (rows * bytes_per_cell) // cols * cols)))
+    for r0 in range(0, ny, rows):
+        for c0 in range(0, nx, width):
+            yield slice(r0, min(r0 + rows, ny)), slice(c0, min(c0 + width, nx))
+
+
+def stream(ds: xr.Dataset, names: list[str], spec, sinks: list[Sink], window_mb: float = WINDOW_MB) -> None:
+    """Compute the lazy 2-D variables ``names`` of ``ds`` window by window and feed every block to ``sinks``."""
+    import dask
+
+    if not names:
+        return
+    per_cell = sum(ds.variables[n].dtype.itemsize for n in names)
+
+    def consume(window, values):
+        for name, block in zip(names, values):
+            for sink in sinks:
+                sink(name, window[0].start, window[1].start, block)
+
+    with ThreadPoolExecutor(1) as writer:
+        pending = None
+        for window in windows(spec, per_cell, window_mb):
+            values = dask.compute(*[ds.variables[n].data[window] for n in names])
+            if pending is not None:
+                pending.result()
+            pending = writer.submit(consume, window, values)
+        pending.result()
+
+
+@dataclass
+class Samples:
+    """Every ``stride``-th row and column of chosen layers, gathered as the windows pass.
+
+    ``stride`` is the smallest that keeps a layer to at most ``max_cells`` cells; the tables and the
+    report read these instead of the full grids (counts scale by ``stride ** 2``).
+    """
+
+    spec: object
+    names: tuple
+    max_cells: float
+    stride: int = 1
+    values: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        ny, nx = self.spec.shape
+        self.stride = max(1, int(np.ceil(np.sqrt(ny * nx / self.max_cells))))
+
+    def __call__(self, name: str, r0: int, c0: int, block: np.ndarray) -> None:
+        if name not in self.names:
+            return
+        k = self.stride
+        if name not in self.values:
+            ny, nx = self.spec.shape
+            self.values[name] = np.empty((-(-ny // k), -(-nx // k)), dtype=block.dtype)
+        first_r, first_c = -r0 % k, -c0 % k
+        part = block[first_r::k, first_c::k]
+        i, j = (r0 + first_r) // k, (c0 + first_c) // k
+        self.values[name][i:i + part.shape[0], j:j + part.shape[1]] = part
+
+    def dataset(self, template: xr.Dataset) -> xr.Dataset:
+        """The samples as a dataset on the sampled coordinates, with ``template``'s attributes and ``crs``."""
+        k = self.stride
+        dims = template["age"].dims
+        coords = {d: template[d][::k] for d in dims}
+        data = {n: xr.Variable(dims, v, template[n].attrs) for n, v in self.values.items()}
+        out = xr.Dataset(data, coords=coords, attrs=template.attrs)
+        if "crs" in template:
+            out["crs"] = template["crs"]
+        return out
