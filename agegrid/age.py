@@ -300,7 +300,7 @@ def _extent_samples(spec, compartments, target: int = 100_000) -> dict[int, np.n
     step = max(1, int(np.sqrt(ny * nx / target)))
     rows = np.unique(np.r_[np.arange(0, ny, step), ny - 1])
     cols = np.unique(np.r_[np.arange(0, nx, step), nx - 1])
-    labels = compartments.labels[np.ix_(rows, cols)]
+    labels = compartments.labels_at(rows[:, None], cols[None, :])
     xx, yy = np.meshgrid(spec.x[cols], spec.y[rows])
     lon, lat = (xx, yy) if spec.geographic else spec.to_lonlat.transform(xx, yy)
     lon, lat = np.asarray(lon), np.asarray(lat)
@@ -433,22 +433,21 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
     and the others are computed and stored.
     """
     chunks = spec.chunks
-    labels = da.from_array(compartments.labels, chunks=chunks)
-    domain = da.from_array(compartments.domain, chunks=chunks)
+    template = da.empty(spec.shape, chunks=chunks, dtype=np.int32)
     packed = PackedModel.pack(model)
     settings = model.settings
     if cache is not None:
         keys = {}
-        rows, cols = labels.chunks
+        rows, cols = template.chunks
         r_edges, c_edges = np.cumsum((0,) + rows), np.cumsum((0,) + cols)
         for i in range(len(rows)):
             for j in range(len(cols)):
                 window = (slice(r_edges[i], r_edges[i + 1]), slice(c_edges[j], c_edges[j + 1]))
-                keys[i, j] = cache.key(packed, settings, (i, j, chunks), compartments.labels[window],
-                                       compartments.domain[window], block_xyz(spec, *window))
+                keys[i, j] = cache.key(packed, settings, (i, j, chunks), *compartments.window(*window),
+                                       block_xyz(spec, *window))
         cache.plan(keys)
 
-    def block(lab, dom, block_info=None):
+    def block(_, block_info=None):
         info = block_info[0]
         (r0, r1), (c0, c1) = info["array-location"]
         key = None if cache is None else cache.keys[tuple(info["chunk-location"])]
@@ -456,11 +455,12 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
             stored = cache.load(key)
             if stored is not None:
                 return stored
-        result = evaluate_block(packed, settings, lab, dom, block_xyz(spec, slice(r0, r1), slice(c0, c1)))
+        window = slice(r0, r1), slice(c0, c1)
+        result = evaluate_block(packed, settings, *compartments.window(*window), block_xyz(spec, *window))
         if key is not None:
             cache.store(key, result)
         return result
 
-    stacked = da.map_blocks(block, labels, domain, dtype=np.float64, new_axis=0,
-                            chunks=((len(LAYERS),),) + labels.chunks)
+    stacked = da.map_blocks(block, template, dtype=np.float64, new_axis=0,
+                            chunks=((len(LAYERS),),) + template.chunks)
     return {name: stacked[i] for i, name in enumerate(LAYERS)}

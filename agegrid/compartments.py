@@ -19,20 +19,74 @@ from agegrid import sphere
 
 @dataclass
 class Compartments:
-    """Compartment labels on the grid (0: outside the domain), the barrier cells and their geometry."""
+    """Compartment labels (0: outside the domain), held block by block, and the barrier geometry.
 
-    labels: np.ndarray
+    Each block of the grid (``spec.chunks``) keeps its local connected-component labels compressed,
+    with a table from local to global labels; the barrier cells and the labels next to them are kept
+    as sparse lists. Memory grows with the barrier length and the block count, not with the cells.
+    """
+
+    spec: object
     count: int
-    barrier: np.ndarray
-    domain: np.ndarray
     barrier_paths: list[np.ndarray]
+    _blocks: dict = field(repr=False)
+    _tables: dict = field(repr=False)
+    _barrier_cells: np.ndarray = field(repr=False)
+    _barrier_labels: np.ndarray = field(repr=False)
+    _near_cells: np.ndarray = field(repr=False)
+    _near_labels: np.ndarray = field(repr=False)
     _segment_cache: tuple | None = field(default=None, repr=False)
+
+    def window(self, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray]:
+        """Labels (int32) and domain mask of a window of the grid."""
+        ny, nx = self.spec.shape
+        r0, r1, _ = rows.indices(ny)
+        c0, c1, _ = cols.indices(nx)
+        labels = np.zeros((r1 - r0, c1 - c0), np.int32)
+        br, bc = self.spec.chunks
+        for i in range(r0 // br, -(-r1 // br)):
+            for j in range(c0 // bc, -(-c1 // bc)):
+                block = self._block(i, j)
+                a0, a1 = max(r0, i * br), min(r1, (i + 1) * br)
+                b0, b1 = max(c0, j * bc), min(c1, (j + 1) * bc)
+                labels[a0 - r0:a1 - r0, b0 - c0:b1 - c0] = block[a0 - i * br:a1 - i * br, b0 - j * bc:b1 - j * bc]
+        domain = labels != 0
+        cells = _cells_in(self._barrier_cells, nx, r0, r1, c0, c1)
+        rr, cc = np.divmod(self._barrier_cells[cells], nx)
+        labels[rr - r0, cc - c0] = self._barrier_labels[cells]
+        domain[rr - r0, cc - c0] = True
+        return labels, domain
+
+    def _block(self, i: int, j: int) -> np.ndarray:
+        """Global labels of the free cells of block (i, j), 0 elsewhere."""
+        from isal import isal_zlib
+
+        data, shape = self._blocks[i, j]
+        local = np.frombuffer(isal_zlib.decompress(data), dtype=np.int32).reshape(shape)
+        return self._tables[i, j][local]
+
+    def labels_at(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Labels at grid cells given by index arrays (any shape)."""
+        ny, nx = self.spec.shape
+        rows, cols = np.broadcast_arrays(np.asarray(rows, np.int64), np.asarray(cols, np.int64))
+        out = np.zeros(rows.shape, np.int32)
+        br, bc = self.spec.chunks
+        block = (rows // br) * (-(-nx // bc)) + cols // bc
+        for b in np.unique(block):
+            sel = block == b
+            i, j = divmod(int(b), -(-nx // bc))
+            out[sel] = self._block(i, j)[rows[sel] - i * br, cols[sel] - j * bc]
+        flat = rows * nx + cols
+        hit, where = _lookup(self._barrier_cells, flat)
+        out[hit] = self._barrier_labels[where[hit]]
+        return out
 
     def assign(self, spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
         """Compartment of each geographic point; 0 off the grid or outside the domain."""
         row, col, inside = spec.index(lon, lat)
-        label = np.where(inside, self.labels[row, col], 0)
-        on_barrier = inside & self.barrier[row, col]
+        label = np.zeros(np.shape(lon), np.int32)
+        label[inside] = self.labels_at(row[inside], col[inside])
+        on_barrier = inside & _lookup(self._barrier_cells, row.astype(np.int64) * spec.shape[1] + col)[0]
         if on_barrier.any():
             x, y = spec.project(lon[on_barrier], lat[on_barrier])
             fx = (x - spec.region[0]) / spec.spacing - 0.5
@@ -40,29 +94,26 @@ class Compartments:
             label[on_barrier] = self._side_labels(fx, fy)
         return label
 
-
-    def _side_labels(self, fx: np.ndarray, fy: np.ndarray, radius: int = 3) -> np.ndarray:
+    def _side_labels(self, fx: np.ndarray, fy: np.ndarray) -> np.ndarray:
         """Label of the nearest free cell on the same side of the nearest barrier segment as each point.
 
         Points are given in fractional (column ``fx``, row ``fy``) cell coordinates; the side of a point
         is the sign of the cross product of its nearest barrier segment's direction with the vector
         from the segment to the point.
         """
-        ny, nx = self.labels.shape
-        offsets = np.array([(dr, dc) for dr in range(-radius, radius + 1) for dc in range(-radius, radius + 1)
-                            if (dr, dc) != (0, 0)])
-        offsets = offsets[np.argsort(np.hypot(*offsets.T), kind="stable")]
+        ny, nx = self.spec.shape
         start, direction, tree = self._segments()
         q = np.stack([fx, fy], -1)
         _, seg = tree.query(q)
         a, d = start[seg], direction[seg]
         side = np.sign(d[:, 0] * (q[:, 1] - a[:, 1]) - d[:, 1] * (q[:, 0] - a[:, 0]))
         r0, c0 = np.rint(fy).astype(int), np.rint(fx).astype(int)
-        result = np.zeros(len(fx), dtype=self.labels.dtype)
+        result = np.zeros(len(fx), dtype=np.int32)
         todo = np.ones(len(fx), bool)
-        for dr, dc in offsets:
+        for dr, dc in SIDE_OFFSETS:
             rr, cc = np.clip(r0 + dr, 0, ny - 1), np.clip(c0 + dc, 0, nx - 1)
-            cand = np.where(self.barrier[rr, cc], 0, self.labels[rr, cc])
+            hit, where = _lookup(self._near_cells, rr.astype(np.int64) * nx + cc)
+            cand = np.where(hit, self._near_labels[where], 0)
             cside = np.sign(d[:, 0] * (rr - a[:, 1]) - d[:, 1] * (cc - a[:, 0]))
             ok = todo & (cand > 0) & ((cside == side) | (side == 0))
             result[ok] = cand[ok]
@@ -85,6 +136,28 @@ class Compartments:
             direction = np.concatenate(dirs) if dirs else np.ones((1, 2))
             self._segment_cache = (start, direction, cKDTree(start + direction / 2))
         return self._segment_cache
+
+
+#: Neighbour offsets searched (nearest first) for a barrier cell's label on its own side.
+SIDE_RADIUS = 3
+SIDE_OFFSETS = sorted(((dr, dc) for dr in range(-SIDE_RADIUS, SIDE_RADIUS + 1)
+                       for dc in range(-SIDE_RADIUS, SIDE_RADIUS + 1) if (dr, dc) != (0, 0)),
+                      key=lambda o: np.hypot(*o))
+
+
+def _lookup(sorted_cells: np.ndarray, flat: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Which flat cell indices are in a sorted array, and where."""
+    where = np.searchsorted(sorted_cells, flat)
+    where = np.minimum(where, max(len(sorted_cells) - 1, 0))
+    hit = (sorted_cells[where] == flat) if len(sorted_cells) else np.zeros(np.shape(flat), bool)
+    return hit, where
+
+
+def _cells_in(sorted_cells: np.ndarray, nx: int, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+    """Positions in a sorted flat-index array of the cells inside rows [r0, r1) and columns [c0, c1)."""
+    lo, hi = np.searchsorted(sorted_cells, [r0 * nx, r1 * nx])
+    cols = sorted_cells[lo:hi] % nx
+    return lo + np.flatnonzero((cols >= c0) & (cols < c1))
 
 
 def _index_path(spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
@@ -117,28 +190,31 @@ def _extension(xyz: np.ndarray, length_rad: float, step_rad: float) -> np.ndarra
     return np.cos(t)[:, None] * b + np.sin(t)[:, None] * tangent
 
 
-def _mark(mask: np.ndarray, path: np.ndarray, value, stop: np.ndarray | None = None, skip: int = 0) -> np.ndarray:
-    """Set the cells of a fractional-index path to ``value``; with ``stop``, end at the first stop cell
-    after ``skip`` points, or where the path leaves the grid. Returns the part of the path marked."""
-    ny, nx = mask.shape
-    r, c = np.rint(path[:, 1]).astype(int), np.rint(path[:, 0]).astype(int)
+def _path_cells(shape, path: np.ndarray, stop_cells: np.ndarray | None = None,
+                skip: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Flat indices of the cells a fractional-index path crosses, and the part of the path used.
+
+    With ``stop_cells`` (sorted flat indices) the path ends at the first stop cell after ``skip``
+    points, or where it leaves the grid.
+    """
+    ny, nx = shape
+    r, c = np.rint(path[:, 1]).astype(np.int64), np.rint(path[:, 0]).astype(np.int64)
     inside = (r >= 0) & (r < ny) & (c >= 0) & (c < nx)
-    if stop is not None:
-        hits = np.flatnonzero(inside & (np.arange(len(r)) >= skip) & stop[np.clip(r, 0, ny - 1), np.clip(c, 0, nx - 1)])
+    if stop_cells is not None:
+        flat = np.clip(r, 0, ny - 1) * nx + np.clip(c, 0, nx - 1)
+        hits = np.flatnonzero(inside & (np.arange(len(r)) >= skip) & _lookup(stop_cells, flat)[0])
         end = hits[0] + 1 if len(hits) else len(r)
         first_out = np.flatnonzero(~inside[skip:])
         if len(first_out):
             end = min(end, skip + first_out[0])
         r, c, inside, path = r[:end], c[:end], inside[:end], path[:end]
-    mask[r[inside], c[inside]] = value
-    return path
+    return r[inside] * nx + c[inside], path
 
 
-def rasterise_domain(spec, polygon) -> np.ndarray:
-    """Cells whose centre lies in the domain polygon (lon, lat); every cell when there is none."""
+def _domain_shapes(spec, polygon) -> list | None:
+    """The domain polygon(s) in the grid's coordinates, for rasterising block by block; None: everywhere."""
     if polygon is None:
-        return np.ones(spec.shape, bool)
-    from rasterio.features import rasterize
+        return None
     from shapely import affinity, ops
 
     geoms = []
@@ -150,8 +226,19 @@ def rasterise_domain(spec, polygon) -> np.ndarray:
             dense = shapely.segmentize(poly, max_segment_length=0.1)
             dense = ops.transform(lambda x, y, z=None: spec.project(np.asarray(x), np.asarray(y)), dense)
         geoms.append(dense)
-    return rasterize(geoms, out_shape=spec.shape, transform=spec.transform, fill=0, default_value=1,
-                     dtype="uint8").astype(bool)
+    return geoms
+
+
+def _domain_block(spec, shapes, rows: slice, cols: slice) -> np.ndarray:
+    """Cells of a window whose centre lies in the domain."""
+    shape = (rows.stop - rows.start, cols.stop - cols.start)
+    if shapes is None:
+        return np.ones(shape, bool)
+    from affine import Affine
+    from rasterio.features import rasterize
+
+    transform = spec.transform @ Affine.translation(cols.start, rows.start)
+    return rasterize(shapes, out_shape=shape, transform=transform, fill=0, default_value=1, dtype="uint8").astype(bool)
 
 
 def implied_fracture_zones(ridges: list[np.ndarray], step_deg: float = 0.1) -> list[np.ndarray]:
@@ -181,12 +268,12 @@ def implied_fracture_zones(ridges: list[np.ndarray], step_deg: float = 0.1) -> l
 
 
 def build_compartments(spec, barriers: list[np.ndarray], domain_polygon=None, extend: bool = True) -> Compartments:
-    """Label the compartments of a grid.
+    """Label the compartments of a grid, block by block.
 
     Parameters
     ----------
     spec : GridSpec
-        The grid.
+        The grid; its blocks (``spec.chunks``) are labelled one at a time.
     barriers : list of numpy.ndarray
         Barrier polylines as (lon, lat) vertex arrays.
     domain_polygon : shapely geometry, optional
@@ -194,59 +281,152 @@ def build_compartments(spec, barriers: list[np.ndarray], domain_polygon=None, ex
     extend : bool
         Continue each barrier along its end great circles to the grid's edge or the next barrier.
     """
-    domain = rasterise_domain(spec, domain_polygon)
+    barrier_cells, paths = _barrier_cells(spec, barriers, extend)
+    near = _near_cells(spec.shape, barrier_cells)
+    labelling = _BlockLabelling(spec, _domain_shapes(spec, domain_polygon), barrier_cells, near)
+    count, tables = labelling.resolve()
+    in_domain = labelling.barrier_in_domain
+    comp = Compartments(spec, count, paths, labelling.blocks, tables, barrier_cells[in_domain],
+                        np.zeros(int(in_domain.sum()), np.int32), near, labelling.near_labels())
+    if len(comp._barrier_cells):
+        rows, cols = np.divmod(comp._barrier_cells, spec.shape[1])
+        comp._barrier_labels = comp._side_labels(cols.astype(float), rows.astype(float))
+    return comp
+
+
+def _barrier_cells(spec, barriers, extend) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Sorted flat indices of the barrier cells (lines and their extensions), and the paths drawn."""
     step = np.radians(spec.spacing) if spec.geographic else spec.spacing / (sphere.EARTH_RADIUS_KM * 1e3)
     step /= 2
-    owner = np.zeros(spec.shape, np.int32)  # which barrier line marked each cell (1-based)
-    paths = []
+    cells, owners, lines = [], [], []
     for number, line in enumerate(barriers, 1):
         xyz = sphere.densify(sphere.to_xyz(line[:, 0], line[:, 1]), step)
         lon, lat = sphere.to_lonlat(xyz)
         path = _index_path(spec, lon, lat)
-        _mark(owner, path, number)
-        paths.append((number, xyz, path))
-    final = owner > 0
-    result_paths = []
-    length = np.pi / 2
-    for number, xyz, path in paths:
-        result_paths.append(path)
+        flat, _ = _path_cells(spec.shape, path)
+        cells.append(flat)
+        owners.append(np.full(len(flat), number))
+        lines.append((number, xyz, path))
+    flat = np.concatenate(cells) if cells else np.zeros(0, np.int64)
+    owner = np.concatenate(owners) if owners else np.zeros(0, int)
+    # a cell crossed by several lines belongs to the last one drawn
+    last = len(flat) - 1 - np.unique(flat[::-1], return_index=True)[1]
+    marked, owner = flat[last], owner[last]
+    all_cells, paths = [marked], []
+    for number, xyz, path in lines:
+        paths.append(path)
         if not (extend and len(xyz) >= 2):
             continue
+        stop = marked[owner != number]
         for ends in (xyz, xyz[::-1]):
-            ext = _extension(ends, length, step)
+            ext = _extension(ends, np.pi / 2, step)
             if not len(ext):
                 continue
             lon, lat = sphere.to_lonlat(np.concatenate([ends[-1:], ext]))
-            ext_path = _index_path(spec, lon, lat)
-            stop = (owner > 0) & (owner != number)
-            result_paths.append(_mark(final, ext_path, True, stop=stop, skip=1))
-    free = domain & ~final
-    labels, count = ndimage.label(free, structure=ndimage.generate_binary_structure(2, 1))
-    if spec.is_global:
-        labels, count = _join_seam(labels)
-    comp = Compartments(labels.astype(np.int32), int(count), final & domain, domain, result_paths)
-    rows, cols = np.nonzero(comp.barrier)
-    if len(rows):
-        comp.labels[rows, cols] = comp._side_labels(cols.astype(float), rows.astype(float))
-    return comp
+            ext_flat, used = _path_cells(spec.shape, _index_path(spec, lon, lat), stop_cells=stop, skip=1)
+            all_cells.append(ext_flat)
+            paths.append(used)
+    return np.unique(np.concatenate(all_cells)), paths
 
 
-def _join_seam(labels: np.ndarray) -> tuple[np.ndarray, int]:
-    """Merge labels that meet across the longitude seam of a global grid."""
-    left, right = labels[:, 0], labels[:, -1]
-    parent = np.arange(labels.max() + 1)
+def _near_cells(shape, barrier_cells: np.ndarray) -> np.ndarray:
+    """Sorted flat indices of every cell within SIDE_RADIUS cells (square) of a barrier cell."""
+    ny, nx = shape
+    rows, cols = np.divmod(barrier_cells, nx)
+    near = [np.clip(rows + dr, 0, ny - 1) * nx + np.clip(cols + dc, 0, nx - 1) for dr, dc in SIDE_OFFSETS]
+    return np.unique(np.concatenate(near)) if near and len(barrier_cells) else np.zeros(0, np.int64)
 
-    def find(a):
-        while parent[a] != a:
-            parent[a] = parent[parent[a]]
-            a = parent[a]
-        return a
 
-    for a, b in zip(left, right):
-        if a and b:
-            ra, rb = find(a), find(b)
-            if ra != rb:
-                parent[max(ra, rb)] = min(ra, rb)
-    roots = np.array([find(i) for i in range(len(parent))])
-    unique, relabel = np.unique(roots, return_inverse=True)
-    return relabel[labels].reshape(labels.shape), len(unique) - 1
+class _BlockLabelling:
+    """Connected free cells labelled block by block and joined across block edges.
+
+    Each block's free cells (in the domain, not barrier) get local labels by 4-connectivity; labels
+    touching across block edges (and across the longitude seam of a global grid) are joined as edges
+    of a graph whose connected components are the compartments, numbered in raster order of their
+    first cell, so the labels do not depend on the block size.
+    """
+
+    def __init__(self, spec, shapes, barrier_cells: np.ndarray, near: np.ndarray):
+        from isal import isal_zlib
+
+        self.spec = spec
+        ny, nx = spec.shape
+        br, bc = spec.chunks
+        self.blocks, self.offsets, self.counts = {}, {}, {}
+        first_cells, pairs = [], []
+        bottom = np.zeros(nx, np.int64)  # provisional ids along the last row of the previous block row
+        west, east = np.zeros(ny, np.int64), np.zeros(ny, np.int64)
+        self.barrier_in_domain = np.zeros(len(barrier_cells), bool)
+        self._near, self._near_ids = near, np.zeros(len(near), np.int64)
+        total = 0
+        for i in range(-(-ny // br)):
+            right = None
+            for j in range(-(-nx // bc)):
+                rows, cols = slice(i * br, min((i + 1) * br, ny)), slice(j * bc, min((j + 1) * bc, nx))
+                domain = _domain_block(spec, shapes, rows, cols)
+                sel = _cells_in(barrier_cells, nx, rows.start, rows.stop, cols.start, cols.stop)
+                rr, cc = np.divmod(barrier_cells[sel], nx)
+                self.barrier_in_domain[sel] = domain[rr - rows.start, cc - cols.start]
+                domain[rr - rows.start, cc - cols.start] = False
+                local, n = ndimage.label(domain, structure=FOUR_CONNECTED)
+                local = local.astype(np.int32, copy=False)
+                self.blocks[i, j] = (isal_zlib.compress(local.tobytes(), 1), local.shape)
+                self.offsets[i, j], self.counts[i, j] = total, n
+                ids = np.where(local > 0, local + total, 0)
+                first_cells.append(_first_cells(local, n, rows.start, cols.start, nx))
+                if i > 0:
+                    pairs.append(np.stack([bottom[cols], ids[0]], -1))
+                if right is not None:
+                    pairs.append(np.stack([right, ids[:, 0]], -1))
+                right = ids[:, -1]
+                bottom[cols] = ids[-1]
+                if j == 0:
+                    west[rows] = ids[:, 0]
+                east[rows] = ids[:, -1]
+                q = _cells_in(near, nx, rows.start, rows.stop, cols.start, cols.stop)
+                qr, qc = np.divmod(near[q], nx)
+                self._near_ids[q] = ids[qr - rows.start, qc - cols.start]
+                total += n
+        if spec.is_global:
+            pairs.append(np.stack([west, east], -1))
+        self.total = total
+        self.first = np.concatenate([[-1]] + first_cells)
+        pairs = np.concatenate(pairs) if pairs else np.zeros((0, 2), np.int64)
+        self.pairs = pairs[(pairs[:, 0] > 0) & (pairs[:, 1] > 0)]
+
+    def resolve(self) -> tuple[int, dict]:
+        """The number of compartments and each block's table from local to global labels."""
+        from scipy.sparse import coo_matrix
+        from scipy.sparse.csgraph import connected_components
+
+        n = self.total + 1
+        graph = coo_matrix((np.ones(len(self.pairs)), (self.pairs[:, 0], self.pairs[:, 1])), shape=(n, n))
+        _, component = connected_components(graph, directed=False)
+        first = np.full(component.max() + 1, np.iinfo(np.int64).max)
+        np.minimum.at(first, component[1:], self.first[1:])
+        used = np.unique(component[1:])
+        order = used[np.argsort(first[used], kind="stable")]
+        rank = np.zeros(component.max() + 1, np.int32)
+        rank[order] = np.arange(1, len(order) + 1)
+        self.global_of = np.concatenate([[0], rank[component[1:]]]).astype(np.int32)
+        tables = {key: np.concatenate([[0], self.global_of[off + 1:off + 1 + self.counts[key]]]).astype(np.int32)
+                  for key, off in self.offsets.items()}
+        return len(order), tables
+
+    def near_labels(self) -> np.ndarray:
+        """Global labels of the cells near barriers (0 where not free)."""
+        return self.global_of[self._near_ids]
+
+
+FOUR_CONNECTED = ndimage.generate_binary_structure(2, 1)
+
+
+def _first_cells(local: np.ndarray, n: int, r0: int, c0: int, nx: int) -> np.ndarray:
+    """Global flat index of the first cell (raster order) of each local label 1..n."""
+    if n == 0:
+        return np.zeros(0, np.int64)
+    flat = local.ravel()
+    running = np.maximum.accumulate(flat)
+    starts = np.flatnonzero(np.diff(running, prepend=0) > 0)  # labels appear first in increasing order
+    rows, cols = np.divmod(starts, local.shape[1])
+    return (rows + r0) * nx + cols + c0

@@ -67,4 +67,5 @@ def run_engine(tmp: Path, basin: SyntheticBasin | None = None, tracks: int = 60,
         values = dask.compute(*lazy.values())
     layers = dict(zip(lazy, values))
     lon, lat = spec.lonlat()
-    return EngineRun(basin, spec, layers, basin.age(lon, lat), lon, lat, comps.domain, model)
+    return EngineRun(basin, spec, layers, basin.age(lon, lat), lon, lat,
+                     comps.window(slice(None), slice(None))[1], model)

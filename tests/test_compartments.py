@@ -1,0 +1,57 @@
+"""Compartments labelled block by block equal one global labelling, do not leak, and stay small."""
+import numpy as np
+import pytest
+from scipy import ndimage
+from shapely.geometry import box
+
+from agegrid.compartments import build_compartments
+from agegrid.grid import GridSpec
+from agegrid.synthetic import SyntheticBasin
+
+
+def _whole(comps):
+    return comps.window(slice(None), slice(None))
+
+
+@pytest.mark.parametrize("chunk", [37, 64, 512])
+def test_block_labels_equal_one_global_labelling(chunk):
+    basin = SyntheticBasin()
+    spec = GridSpec(basin.region(0.5), 0.1, chunk=chunk)
+    comps = build_compartments(spec, basin.fracture_zones(), basin.domain_polygon())
+    labels, domain = _whole(comps)
+    barrier = np.zeros(spec.size, bool)
+    barrier[comps._barrier_cells] = True
+    barrier = barrier.reshape(spec.shape)
+    # reference: scipy's connected components of the whole free raster at once (raster-order numbering)
+    reference, count = ndimage.label(domain & ~barrier, structure=ndimage.generate_binary_structure(2, 1))
+    free = domain & ~barrier
+    assert comps.count == count
+    assert np.array_equal(labels[free], reference[free])
+    assert (labels[barrier & domain] > 0).mean() > 0.99  # barrier cells join a neighbouring compartment
+    assert not labels[~domain].any()
+
+
+def test_a_barrier_stopping_short_of_the_edge_does_not_leak():
+    spec = GridSpec((0.0, 10.0, 0.0, 10.0), 0.05, chunk=64)
+    domain = box(0.5, 0.5, 9.5, 9.5)
+    line = np.array([[2.0, 5.0], [8.0, 5.2]])  # stops 1.5 degrees short of the domain on both ends
+    assert build_compartments(spec, [line], domain, extend=True).count == 2
+    assert build_compartments(spec, [line], domain, extend=False).count == 1
+
+
+def test_global_grid_joins_across_the_longitude_seam():
+    spec = GridSpec((0.0, 360.0, -60.0, 60.0), 0.5, chunk=64)
+    meridians = [np.array([[lon, -70.0], [lon, 70.0]]) for lon in (100.0, 250.0)]
+    comps = build_compartments(spec, meridians, None, extend=False)
+    labels, _ = _whole(comps)
+    assert comps.count == 2
+    assert labels[100, 0] == labels[100, -1]  # both sides of the seam: one compartment
+
+
+def test_memory_grows_with_barriers_not_cells():
+    basin = SyntheticBasin()
+    spec = GridSpec(basin.region(0.5), 0.02, chunk=512)
+    comps = build_compartments(spec, basin.fracture_zones(), basin.domain_polygon())
+    held = sum(len(data) for data, _ in comps._blocks.values()) + comps._barrier_cells.nbytes \
+        + comps._near_cells.nbytes + comps._near_labels.nbytes
+    assert held < 0.05 * spec.size * 4, (held, spec.size)  # a global int32 raster would be spec.size * 4
