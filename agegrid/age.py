@@ -34,8 +34,10 @@ from dataclasses import dataclass, field
 
 import dask.array as da
 import numpy as np
+from numba import njit
 
 from agegrid import sphere
+from agegrid.age_kernel import NARROW, WIDE
 
 log = logging.getLogger("agegrid")
 
@@ -53,6 +55,10 @@ FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outs
 #: Layers the kernel returns, in order.
 LAYERS = ("age", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "age_fraction",
           "half_rate", "spreading_azimuth", "compartment", "flank", "full_rate", "asymmetry")
+#: The kernel's types: float64 where retiming needs it, float32 elsewhere (integers are exact in float32).
+LAYER_DTYPES = {name: np.dtype(np.float64 if name in WIDE else np.float32) for name in LAYERS}
+#: Bytes a cell takes in a block returned by :func:`evaluate_block`.
+BLOCK_BYTES_PER_CELL = sum(d.itemsize for d in LAYER_DTYPES.values())
 
 
 @dataclass
@@ -179,15 +185,28 @@ def _consistent(col: np.ndarray, offset: np.ndarray, sigma_km: np.ndarray) -> np
     if len(col) < 3 or np.ptp(col) == 0:
         return keep
     fit = np.linspace(0, len(col) - 1, min(len(col), 150)).astype(int)  # Theil-Sen is O(n^2) in pairs
-    i, j = np.triu_indices(len(fit), 1)
-    dx = col[fit][j] - col[fit][i]
-    ok = dx != 0
-    slope = np.median((offset[fit][j] - offset[fit][i])[ok] / dx[ok])  # Sen (1968): median pairwise slope
+    slope = _sen_slope(np.ascontiguousarray(col[fit], dtype=np.float64),
+                       np.ascontiguousarray(offset[fit], dtype=np.float64))
     resid = offset - slope * col
     resid -= np.median(resid)
     mad = 1.4826 * np.median(np.abs(resid))
     tol = max(3 * np.median(sigma_km) / sphere.EARTH_RADIUS_KM, 4 * mad)
     return np.abs(resid) <= tol
+
+
+@njit(cache=True)
+def _sen_slope(x: np.ndarray, y: np.ndarray) -> float:
+    """Sen (1968): the median of the slopes between all pairs of points with distinct x."""
+    n = len(x)
+    slopes = np.empty(n * (n - 1) // 2)
+    k = 0
+    for i in range(n):
+        for j in range(i + 1, n):
+            dx = x[j] - x[i]
+            if dx != 0:
+                slopes[k] = (y[j] - y[i]) / dx
+                k += 1
+    return np.median(slopes[:k]) if k else np.nan
 
 
 def _plausible(offset: np.ndarray, sigma_km: np.ndarray, dt: float, settings: Settings) -> np.ndarray:
@@ -300,7 +319,7 @@ def _extent_samples(spec, compartments, target: int = 100_000) -> dict[int, np.n
     step = max(1, int(np.sqrt(ny * nx / target)))
     rows = np.unique(np.r_[np.arange(0, ny, step), ny - 1])
     cols = np.unique(np.r_[np.arange(0, nx, step), nx - 1])
-    labels = compartments.labels_at(rows[:, None], cols[None, :])
+    labels = compartments.labels_on(rows, cols)
     xx, yy = np.meshgrid(spec.x[cols], spec.y[rows])
     lon, lat = (xx, yy) if spec.geographic else spec.to_lonlat.transform(xx, yy)
     lon, lat = np.asarray(lon), np.asarray(lat)
@@ -399,17 +418,35 @@ FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CO
 
 def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, domain: np.ndarray,
                    xyz: tuple[np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
-    """All :data:`LAYERS` for one block of cells, stacked on axis 0; ``xyz`` holds three 2-D arrays."""
+    """All :data:`LAYERS` of one block of cells, packed in one byte array (see :func:`block_layer`).
+
+    ``xyz`` holds three 2-D arrays. The float64 planes of ``age_kernel.WIDE`` come first, then the
+    float32 planes of ``age_kernel.NARROW``: one allocation, each plane contiguous.
+    """
     from agegrid.age_kernel import evaluate
 
-    out = np.empty((len(LAYERS),) + labels.shape, dtype=np.float64)
+    cells = labels.size
+    buffer = np.empty((BLOCK_BYTES_PER_CELL,) + labels.shape, dtype=np.uint8)
+    flat = buffer.reshape(-1)
+    wide = flat[:8 * len(WIDE) * cells].view(np.float64).reshape((len(WIDE),) + labels.shape)
+    narrow = flat[8 * len(WIDE) * cells:].view(np.float32).reshape((len(NARROW),) + labels.shape)
     p = packed
     x, y, z = (np.ascontiguousarray(c, dtype=np.float64) for c in xyz)
     evaluate(x, y, z, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
-             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, out)
-    return out
+             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, wide, narrow)
+    return buffer
+
+
+def block_layer(buffer: np.ndarray, name: str) -> np.ndarray:
+    """One layer of a block returned by :func:`evaluate_block` (a view, no copy)."""
+    shape = buffer.shape[1:]
+    if name in WIDE:
+        k = WIDE.index(name)
+        return buffer[8 * k:8 * (k + 1)].reshape(-1).view(np.float64).reshape(shape)
+    k = 8 * len(WIDE) + 4 * NARROW.index(name)
+    return buffer[k:k + 4].reshape(-1).view(np.float32).reshape(shape)
 
 
 def block_xyz(spec, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -461,6 +498,7 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
             cache.store(key, result)
         return result
 
-    stacked = da.map_blocks(block, template, dtype=np.float64, new_axis=0,
-                            chunks=((len(LAYERS),),) + template.chunks)
-    return {name: stacked[i] for i, name in enumerate(LAYERS)}
+    packed_blocks = da.map_blocks(block, template, dtype=np.uint8, new_axis=0,
+                                  chunks=((BLOCK_BYTES_PER_CELL,),) + template.chunks)
+    return {name: da.map_blocks(block_layer, packed_blocks, name, drop_axis=0, dtype=LAYER_DTYPES[name])
+            for name in LAYERS}

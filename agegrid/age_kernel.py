@@ -1,4 +1,5 @@
-"""The age engine's cell kernel, compiled with numba: one pass per cell, parallel over rows.
+"""The age engine's cell kernel, compiled with numba: one pass per cell, without the GIL (dask runs the
+blocks in parallel, so no numba threading layer is needed).
 
 For each cell: its compartment's frame coordinates (w, s), the column of the trace table, a binary
 search for the two traces that bracket s, and from that pair the age, its uncertainty, the brackets and
@@ -9,53 +10,62 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit, prange
+from numba import njit
 
 from agegrid.sphere import EARTH_RADIUS_KM
 
-N_LAYERS = 12
-(AGE, SIGMA, FLAG, YOUNG, OLD, FRACTION, RATE, AZIMUTH, COMPARTMENT, FLANK, FULL_RATE, ASYMMETRY) = range(N_LAYERS)
+#: Layers kept in float64 (``wide``: retiming needs them exact) and in float32 (``narrow``), in plane order.
+WIDE = ("age", "age_fraction")
+NARROW = ("age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "half_rate", "spreading_azimuth",
+          "compartment", "flank", "full_rate", "asymmetry")
+AGE, FRACTION = range(len(WIDE))
+(SIGMA, FLAG, YOUNG, OLD, RATE, AZIMUTH, COMPARTMENT, FLANK, FULL_RATE, ASYMMETRY) = range(len(NARROW))
 
 
-@njit(cache=True)
-def _pair_rate(V, ages, i0, i1, nc, j0, t, dw, w):
-    """Half-rate (km/Myr) between traces i0 and i1 of one compartment at a column position."""
-    ia, ib = i0 * nc + j0, i1 * nc + j0
+@njit(cache=True, nogil=True)
+def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
+    """Half-rate (km/Myr) between traces i0 and i0 + 1 of the compartment at offsets (vo, to), at a column."""
+    ia = vo + i0 * nc + j0
+    ib = ia + nc
     va = V[ia] * (1.0 - t) + V[ia + 1] * t
     vb = V[ib] * (1.0 - t) + V[ib + 1] * t
     gap = abs(vb - va)
-    dt = abs(ages[i1] - ages[i0])
+    dt = abs(ages[to + i0 + 1] - ages[to + i0])
     if gap <= 0 or dt <= 0:
         return np.nan
     mid = 0.5 * (va + vb)
     cos2 = max(1.0 - mid * mid, 1e-12)
     slope = 0.5 * ((V[ia + 1] - V[ia]) + (V[ib + 1] - V[ib])) / dw
     tilt = slope * (1.0 + w * w) / cos2
-    return gap / math.sqrt(cos2) * EARTH_RADIUS_KM / math.sqrt(1.0 + tilt * tilt) / dt
+    return gap * EARTH_RADIUS_KM / (dt * math.sqrt(cos2 * (1.0 + tilt * tilt)))
 
 
-@njit(parallel=True, cache=True, fastmath=False)
+@njit(cache=True, nogil=True)
 def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
-             sigma, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, out):
-    """Fill ``out`` (N_LAYERS, ny, nx) for unit vectors (x, y, z) of a block of cells.
+             sigma, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, wide, narrow):
+    """Fill ``wide`` (float64 planes of :data:`WIDE`) and ``narrow`` (float32 planes of :data:`NARROW`)
+    for unit vectors (x, y, z) of a block of cells.
 
     ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far).
     """
     ny, nx = labels.shape
     nan = np.nan
-    for i in prange(ny):
+    for i in range(ny):
+        last_lab, last_a, conj_lab, conj_lo = -1, -1, -1, -1
         for jj in range(nx):
             lab = labels[i, jj]
-            out[COMPARTMENT, i, jj] = lab
-            out[YOUNG, i, jj] = -1.0
-            out[OLD, i, jj] = -1.0
-            out[FLANK, i, jj] = 0.0
-            for layer in (AGE, SIGMA, FRACTION, RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
-                out[layer, i, jj] = nan
+            narrow[COMPARTMENT, i, jj] = lab
+            narrow[YOUNG, i, jj] = -1.0
+            narrow[OLD, i, jj] = -1.0
+            narrow[FLANK, i, jj] = 0.0
+            wide[AGE, i, jj] = nan
+            wide[FRACTION, i, jj] = nan
+            for layer in (SIGMA, RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
+                narrow[layer, i, jj] = nan
             if not domain[i, jj]:
-                out[FLAG, i, jj] = flags[2]
+                narrow[FLAG, i, jj] = flags[2]
                 continue
-            out[FLAG, i, jj] = flags[3]
+            narrow[FLAG, i, jj] = flags[3]
             if lab <= 0 or lab >= has.shape[0] or not has[lab]:
                 continue
             px, py, pz = x[i, jj], y[i, jj], z[i, jj]
@@ -79,15 +89,24 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
             K = ntrace[lab]
             vo = voff[lab]
             to = toff[lab]
-            lo = 0
-            hi = K
-            while lo < hi:
-                mid = (lo + hi) // 2
-                vm = V[vo + mid * nc + j0] * (1.0 - t) + V[vo + mid * nc + j0 + 1] * t
-                if vm <= s:
-                    lo = mid + 1
-                else:
-                    hi = mid
+            # neighbouring cells mostly share a bracket: test the last one before searching (V grows with k,
+            # so a pair that brackets s is exactly what the binary search would find)
+            lo = -1
+            if lab == last_lab and 0 <= last_a < K - 1:
+                ia = vo + last_a * nc + j0
+                if V[ia] * (1.0 - t) + V[ia + 1] * t <= s < V[ia + nc] * (1.0 - t) + V[ia + nc + 1] * t:
+                    lo = last_a + 1
+            if lo < 0:
+                lo = 0
+                hi = K
+                while lo < hi:
+                    mid = (lo + hi) // 2
+                    vm = V[vo + mid * nc + j0] * (1.0 - t) + V[vo + mid * nc + j0 + 1] * t
+                    if vm <= s:
+                        lo = mid + 1
+                    else:
+                        hi = mid
+            last_lab, last_a = lab, lo - 1
             a = lo - 1
             if a < 0:
                 a = 0
@@ -113,13 +132,13 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
                 t_end = ta if f < 0.0 else tb
                 span = abs(age - t_end)
             if span > max_extrapolation:
-                out[FLAG, i, jj] = flags[4]
+                narrow[FLAG, i, jj] = flags[4]
                 continue
-            out[FLAG, i, jj] = flags[1] if extrapolated else flags[0]
-            out[AGE, i, jj] = age
-            out[FRACTION, i, jj] = fy
-            out[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
-            out[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
+            narrow[FLAG, i, jj] = flags[1] if extrapolated else flags[0]
+            wide[AGE, i, jj] = age
+            wide[FRACTION, i, jj] = fy
+            narrow[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
+            narrow[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
             # rate and direction from the bracketing pair
             fc = min(max(f, 0.0), 1.0)
             slope = ((1.0 - fc) * (V[ia + 1] - V[ia]) + fc * (V[ib + 1] - V[ib])) / dw[lab]
@@ -128,57 +147,65 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
             dt = abs(tb - ta)
             rate = nan
             if gap > 0 and dt > 0:
-                rate = gap / math.sqrt(cos2) * EARTH_RADIUS_KM / math.sqrt(1.0 + tilt * tilt) / dt
-            out[RATE, i, jj] = rate
+                rate = gap * EARTH_RADIUS_KM / (dt * math.sqrt(cos2 * (1.0 + tilt * tilt)))
+            narrow[RATE, i, jj] = rate
             # flank and the conjugate flank's rate at the same age and along-strike position
             r = ridge[lab]
             if r >= 0:
                 plus = a >= r and not mirror
-                out[FLANK, i, jj] = 1.0 if plus else -1.0
+                narrow[FLANK, i, jj] = 1.0 if plus else -1.0
                 conj = np.nan
                 if not mirror:
                     # the other side's ages are monotone away from the ridge: binary search for the pair
                     if plus and r > 0 and ages[to] >= age:  # minus side: ages fall from index 0 to r
-                        lo, hi = 0, r
-                        while hi - lo > 1:
-                            mid = (lo + hi) // 2
-                            if ages[to + mid] >= age:
-                                lo = mid
-                            else:
-                                hi = mid
-                        conj = _pair_rate(V[vo:], ages[to:], lo, lo + 1, nc, j0, t, dw[lab], w)
+                        if lab == conj_lab and 0 <= conj_lo < r and ages[to + conj_lo] >= age > ages[to + conj_lo + 1]:
+                            lo = conj_lo  # the neighbouring cell's pair still brackets this age
+                        else:
+                            lo, hi = 0, r
+                            while hi - lo > 1:
+                                mid = (lo + hi) // 2
+                                if ages[to + mid] >= age:
+                                    lo = mid
+                                else:
+                                    hi = mid
+                        conj_lab, conj_lo = lab, lo
+                        conj = _pair_rate(V, ages, vo, to, lo, nc, j0, t, dw[lab], w)
                     elif not plus and r < K - 1 and ages[to + K - 1] >= age:  # plus side: ages rise from r
-                        lo, hi = r, K - 1
-                        while hi - lo > 1:
-                            mid = (lo + hi) // 2
-                            if ages[to + mid] <= age:
-                                lo = mid
-                            else:
-                                hi = mid
-                        conj = _pair_rate(V[vo:], ages[to:], lo, lo + 1, nc, j0, t, dw[lab], w)
+                        if lab == conj_lab and r <= conj_lo < K - 1 and ages[to + conj_lo] <= age < ages[to + conj_lo + 1]:
+                            lo = conj_lo
+                        else:
+                            lo, hi = r, K - 1
+                            while hi - lo > 1:
+                                mid = (lo + hi) // 2
+                                if ages[to + mid] <= age:
+                                    lo = mid
+                                else:
+                                    hi = mid
+                        conj_lab, conj_lo = lab, lo
+                        conj = _pair_rate(V, ages, vo, to, lo, nc, j0, t, dw[lab], w)
                 if conj == conj and rate == rate:
-                    out[FULL_RATE, i, jj] = rate + conj
-                    out[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
+                    narrow[FULL_RATE, i, jj] = rate + conj
+                    narrow[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
+            # across-strike direction n - s p and along-strike n x p: both have length sqrt(1 - s^2), which
+            # the direction (atan2) does not need
             nx_, ny_, nz_ = f0[2, 0], f0[2, 1], f0[2, 2]
             evx, evy, evz = nx_ - s * px, ny_ - s * py, nz_ - s * pz
-            nev = math.sqrt(evx * evx + evy * evy + evz * evz)
             eux, euy, euz = ny_ * pz - nz_ * py, nz_ * px - nx_ * pz, nx_ * py - ny_ * px
-            neu = math.sqrt(eux * eux + euy * euy + euz * euz)
             sign = 1.0 if tb > ta else -1.0
             if mirror:
                 sign = -sign
-            gx = sign * (evx / nev - tilt * eux / neu)
-            gy = sign * (evy / nev - tilt * euy / neu)
-            gz = sign * (evz / nev - tilt * euz / neu)
+            gx = sign * (evx - tilt * eux)
+            gy = sign * (evy - tilt * euy)
+            gz = sign * (evz - tilt * euz)
             east = -py * gx + px * gy
             north = -pz * px * gx - pz * py * gy + (px * px + py * py) * gz
             az = math.degrees(math.atan2(east, north))
-            out[AZIMUTH, i, jj] = az + 360.0 if az < 0 else az
+            narrow[AZIMUTH, i, jj] = az + 360.0 if az < 0 else az
             # uncertainty
             da = D[ia] * (1.0 - t) + D[ia + 1] * t
             db = D[ib] * (1.0 - t) + D[ib + 1] * t
             sa2 = sigma[to + a] ** 2 + (growth * da) ** 2
             sb2 = sigma[to + b] ** 2 + (growth * db) ** 2
-            position = math.sqrt((1.0 - fc) ** 2 * sa2 + fc * fc * sb2) / rate if rate > 0 else nan
-            out[SIGMA, i, jj] = math.sqrt(position ** 2 + (timescale_fraction * age) ** 2
+            position2 = ((1.0 - fc) ** 2 * sa2 + fc * fc * sb2) / (rate * rate) if rate > 0 else nan
+            narrow[SIGMA, i, jj] = math.sqrt(position2 + (timescale_fraction * age) ** 2
                                           + (extrapolation_fraction * span) ** 2)

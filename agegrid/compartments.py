@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import shapely
+from numba import njit
 from scipy import ndimage
 
 from agegrid import sphere
@@ -59,11 +60,14 @@ class Compartments:
 
     def _block(self, i: int, j: int) -> np.ndarray:
         """Global labels of the free cells of block (i, j), 0 elsewhere."""
+        return self._tables[i, j][self._local(i, j)]
+
+    def _local(self, i: int, j: int) -> np.ndarray:
+        """Block (i, j)'s local labels."""
         from isal import isal_zlib
 
         data, shape = self._blocks[i, j]
-        local = np.frombuffer(isal_zlib.decompress(data), dtype=np.int32).reshape(shape)
-        return self._tables[i, j][local]
+        return np.frombuffer(isal_zlib.decompress(data), dtype=np.int32).reshape(shape)
 
     def labels_at(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
         """Labels at grid cells given by index arrays (any shape)."""
@@ -75,10 +79,27 @@ class Compartments:
         for b in np.unique(block):
             sel = block == b
             i, j = divmod(int(b), -(-nx // bc))
-            out[sel] = self._block(i, j)[rows[sel] - i * br, cols[sel] - j * bc]
+            out[sel] = self._tables[i, j][self._local(i, j)[rows[sel] - i * br, cols[sel] - j * bc]]
         flat = rows * nx + cols
         hit, where = _lookup(self._barrier_cells, flat)
         out[hit] = self._barrier_labels[where[hit]]
+        return out
+
+    def labels_on(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Labels on the sub-grid of the sorted row and column indices ``rows`` x ``cols``."""
+        rows, cols = np.asarray(rows, np.int64), np.asarray(cols, np.int64)
+        nx = self.spec.shape[1]
+        out = np.zeros((len(rows), len(cols)), np.int32)
+        br, bc = self.spec.chunks
+        for i in np.unique(rows // br):
+            r_sel = np.flatnonzero(rows // br == i)
+            for j in np.unique(cols // bc):
+                c_sel = np.flatnonzero(cols // bc == j)
+                local = self._local(i, j)[np.ix_(rows[r_sel] - i * br, cols[c_sel] - j * bc)]
+                out[np.ix_(r_sel, c_sel)] = self._tables[i, j][local]
+        rr, cc = np.divmod(self._barrier_cells, nx)
+        on = np.isin(rr, rows) & np.isin(cc, cols)
+        out[np.searchsorted(rows, rr[on]), np.searchsorted(cols, cc[on])] = self._barrier_labels[on]
         return out
 
     def assign(self, spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
@@ -310,7 +331,9 @@ def _barrier_cells(spec, barriers, extend) -> tuple[np.ndarray, list[np.ndarray]
     flat = np.concatenate(cells) if cells else np.zeros(0, np.int64)
     owner = np.concatenate(owners) if owners else np.zeros(0, int)
     # a cell crossed by several lines belongs to the last one drawn
-    last = len(flat) - 1 - np.unique(flat[::-1], return_index=True)[1]
+    order = np.argsort(flat, kind="stable")
+    ordered = flat[order]
+    last = order[np.r_[ordered[1:] != ordered[:-1], True]] if len(flat) else order
     marked, owner = flat[last], owner[last]
     all_cells, paths = [marked], []
     for number, xyz, path in lines:
@@ -326,7 +349,7 @@ def _barrier_cells(spec, barriers, extend) -> tuple[np.ndarray, list[np.ndarray]
             ext_flat, used = _path_cells(spec.shape, _index_path(spec, lon, lat), stop_cells=stop, skip=1)
             all_cells.append(ext_flat)
             paths.append(used)
-    return np.unique(np.concatenate(all_cells)), paths
+    return _unique(np.concatenate(all_cells)), paths
 
 
 def _near_cells(shape, barrier_cells: np.ndarray) -> np.ndarray:
@@ -334,7 +357,13 @@ def _near_cells(shape, barrier_cells: np.ndarray) -> np.ndarray:
     ny, nx = shape
     rows, cols = np.divmod(barrier_cells, nx)
     near = [np.clip(rows + dr, 0, ny - 1) * nx + np.clip(cols + dc, 0, nx - 1) for dr, dc in SIDE_OFFSETS]
-    return np.unique(np.concatenate(near)) if near and len(barrier_cells) else np.zeros(0, np.int64)
+    return _unique(np.concatenate(near)) if len(barrier_cells) else np.zeros(0, np.int64)
+
+
+def _unique(values: np.ndarray) -> np.ndarray:
+    """Sorted unique values by sorting (numpy's hash-based ``unique`` is much slower on many distinct integers)."""
+    ordered = np.sort(values)
+    return ordered[np.r_[True, ordered[1:] != ordered[:-1]]] if len(ordered) else ordered
 
 
 class _BlockLabelling:
@@ -361,9 +390,10 @@ class _BlockLabelling:
         total = 0
         for i in range(-(-ny // br)):
             right = None
+            band = _domain_block(spec, shapes, slice(i * br, min((i + 1) * br, ny)), slice(0, nx))
             for j in range(-(-nx // bc)):
                 rows, cols = slice(i * br, min((i + 1) * br, ny)), slice(j * bc, min((j + 1) * bc, nx))
-                domain = _domain_block(spec, shapes, rows, cols)
+                domain = band[:, cols].copy()
                 sel = _cells_in(barrier_cells, nx, rows.start, rows.stop, cols.start, cols.stop)
                 rr, cc = np.divmod(barrier_cells[sel], nx)
                 self.barrier_in_domain[sel] = domain[rr - rows.start, cc - cols.start]
@@ -421,12 +451,22 @@ class _BlockLabelling:
 FOUR_CONNECTED = ndimage.generate_binary_structure(2, 1)
 
 
+@njit(cache=True)
+def _first_positions(flat: np.ndarray, n: int) -> np.ndarray:
+    """Position of the first occurrence of each label 1..n in a flat label array."""
+    first = np.full(n, -1, np.int64)
+    found = 0
+    for p in range(flat.size):
+        label = flat[p]
+        if label > 0 and first[label - 1] < 0:
+            first[label - 1] = p
+            found += 1
+            if found == n:
+                break
+    return first
+
+
 def _first_cells(local: np.ndarray, n: int, r0: int, c0: int, nx: int) -> np.ndarray:
     """Global flat index of the first cell (raster order) of each local label 1..n."""
-    if n == 0:
-        return np.zeros(0, np.int64)
-    flat = local.ravel()
-    running = np.maximum.accumulate(flat)
-    starts = np.flatnonzero(np.diff(running, prepend=0) > 0)  # labels appear first in increasing order
-    rows, cols = np.divmod(starts, local.shape[1])
+    rows, cols = np.divmod(_first_positions(local.ravel(), n), local.shape[1])
     return (rows + r0) * nx + cols + c0
