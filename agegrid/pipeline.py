@@ -8,7 +8,6 @@ from __future__ import annotations
 import contextlib
 import csv
 import io
-import json
 import logging
 import sys
 import time

@@ -10,7 +10,7 @@ it, so heat flow is finite everywhere.
 from __future__ import annotations
 
 import dataclasses
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import erfc, erfinv
