@@ -47,6 +47,8 @@ GROWTH_PER_KM = 0.02
 EXTRAPOLATION_FRACTION = 0.25
 #: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
 MIN_COS_FROM_CENTRE = 0.17
+#: The empty trace passed as 'no younger trace' to :func:`_trace`.
+NO_TRACE = np.zeros(0)
 
 FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FAR = 1, 2, 3, 4, 5
 FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outside_domain "
@@ -136,43 +138,72 @@ class AgeModel:
 
 
 # --- building the traces ---------------------------------------------------------------------------
+@njit(cache=True)
 def _binned(col: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Mean position per integer column of the control of one trace, sorted along strike."""
-    key = np.rint(col).astype(np.int64)
-    _, inverse = np.unique(key, return_inverse=True)
-    count = np.bincount(inverse)
-    return np.bincount(inverse, col) / count, np.bincount(inverse, v) / count
+    key = np.rint(col)
+    order = np.argsort(key, kind="mergesort")
+    xp = np.empty(len(col))
+    vp = np.empty(len(col))
+    m = -1
+    count = 0
+    for k in range(len(order)):
+        p = order[k]
+        if k == 0 or key[p] != key[order[k - 1]]:
+            if m >= 0:
+                xp[m] /= count
+                vp[m] /= count
+            m += 1
+            xp[m], vp[m], count = 0.0, 0.0, 0
+        xp[m] += col[p]
+        vp[m] += v[p]
+        count += 1
+    xp[m] /= count
+    vp[m] /= count
+    return xp[:m + 1], vp[:m + 1]
 
 
+@njit(cache=True)
 def _end_fit(xp: np.ndarray, vp: np.ndarray, end: int) -> tuple[float, float]:
-    """Slope and anchor of a line through the control nearest one end of a trace."""
+    """Slope (least squares) and anchor of a line through the control nearest one end of a trace."""
+    anchor = vp[-1] if end > 0 else vp[0]
     span = max(3.0, 0.1 * (xp[-1] - xp[0]))
     sel = (xp >= xp[-1] - span) if end > 0 else (xp <= xp[0] + span)
     if sel.sum() < 2:
-        return 0.0, float(vp[-1] if end > 0 else vp[0])
-    slope = np.polyfit(xp[sel], vp[sel], 1)[0]
-    return float(slope), float(vp[-1] if end > 0 else vp[0])
+        return 0.0, anchor
+    x, y = xp[sel], vp[sel]
+    dx = x - x.mean()
+    return (dx * (y - y.mean())).sum() / (dx * dx).sum(), anchor
 
 
-def _trace(col: np.ndarray, v: np.ndarray, ncol: int, previous: np.ndarray | None, km_per_col: float):
-    """Resample one trace on the column axis; returns (V, D) with D the along-strike km to control."""
+@njit(cache=True)
+def _trace(col: np.ndarray, v: np.ndarray, ncol: int, previous: np.ndarray, km_per_col: float):
+    """Resample one trace on the column axis; returns (V, D) with D the along-strike km to control.
+
+    ``previous`` is the next younger trace of the flank, whose shape continues this one beyond its
+    control, or an empty array (the trace is continued along its own end trend).
+    """
     xp, vp = _binned(col, v)
-    cols = np.arange(ncol, dtype=float)
+    cols = np.arange(ncol) * 1.0
     values = np.interp(cols, xp, vp)
-    before, after = cols < xp[0], cols > xp[-1]
-    if previous is not None:
-        values[before] = previous[before] + (vp[0] - np.interp(xp[0], cols, previous))
-        values[after] = previous[after] + (vp[-1] - np.interp(xp[-1], cols, previous))
-    else:
-        slope, anchor = _end_fit(xp, vp, -1)
-        values[before] = anchor + slope * (cols[before] - xp[0])
-        slope, anchor = _end_fit(xp, vp, 1)
-        values[after] = anchor + slope * (cols[after] - xp[-1])
-    pos = np.clip(np.searchsorted(xp, cols), 1, max(1, len(xp) - 1))
-    near = np.minimum(np.abs(cols - xp[pos - 1]), np.abs(cols - xp[np.minimum(pos, len(xp) - 1)]))
-    return values, near * km_per_col
+    if len(previous):
+        lead = vp[0] - np.interp(xp[0], cols, previous)
+        tail = vp[-1] - np.interp(xp[-1], cols, previous)
+    slope0, anchor0 = _end_fit(xp, vp, -1)
+    slope1, anchor1 = _end_fit(xp, vp, 1)
+    near = np.empty(ncol)
+    last = len(xp) - 1
+    for j in range(ncol):
+        if cols[j] < xp[0]:
+            values[j] = previous[j] + lead if len(previous) else anchor0 + slope0 * (cols[j] - xp[0])
+        elif cols[j] > xp[-1]:
+            values[j] = previous[j] + tail if len(previous) else anchor1 + slope1 * (cols[j] - xp[-1])
+        pos = min(max(np.searchsorted(xp, cols[j]), 1), max(1, last))
+        near[j] = min(abs(cols[j] - xp[pos - 1]), abs(cols[j] - xp[min(pos, last)])) * km_per_col
+    return values, near
 
 
+@njit(cache=True)
 def _consistent(col: np.ndarray, offset: np.ndarray, sigma_km: np.ndarray) -> np.ndarray:
     """Which control points of one trace agree with a robust line through the rest.
 
@@ -181,12 +212,11 @@ def _consistent(col: np.ndarray, offset: np.ndarray, sigma_km: np.ndarray) -> np
     pick sigmas or four robust standard deviations, separates points that belong to another
     isochron (a pick moved across a fracture zone, a mis-identified anomaly).
     """
-    keep = np.ones(len(col), bool)
-    if len(col) < 3 or np.ptp(col) == 0:
-        return keep
-    fit = np.linspace(0, len(col) - 1, min(len(col), 150)).astype(int)  # Theil-Sen is O(n^2) in pairs
-    slope = _sen_slope(np.ascontiguousarray(col[fit], dtype=np.float64),
-                       np.ascontiguousarray(offset[fit], dtype=np.float64))
+    n = len(col)
+    if n < 3 or col.max() == col.min():
+        return np.ones(n, np.bool_)
+    fit = np.linspace(0, n - 1, min(n, 150)).astype(np.int64)  # Theil-Sen is O(n^2) in pairs
+    slope = _sen_slope(col[fit], offset[fit])
     resid = offset - slope * col
     resid -= np.median(resid)
     mad = 1.4826 * np.median(np.abs(resid))
@@ -207,6 +237,12 @@ def _sen_slope(x: np.ndarray, y: np.ndarray) -> float:
                 slopes[k] = (y[j] - y[i]) / dx
                 k += 1
     return np.median(slopes[:k]) if k else np.nan
+
+
+@njit(cache=True)
+def _median(values: np.ndarray) -> float:
+    """The median of a small array (compiled: numpy's call overhead dominates at this size)."""
+    return np.median(values)
 
 
 def _plausible(offset: np.ndarray, sigma_km: np.ndarray, dt: float, settings: Settings) -> np.ndarray:
@@ -254,8 +290,8 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
             outliers.extend(int(i) for i in np.flatnonzero(ridge)[~keep])
             used[np.flatnonzero(ridge)[~keep]] = False
     if used.any():
-        rv, rd = _trace(col[used], v[used], ncol, None, km_per_col)
-        ridge_trace = (0, 0.0, 0, rv, rd, float(np.median(sigma[used])))
+        rv, rd = _trace(col[used], v[used], ncol, NO_TRACE, km_per_col)
+        ridge_trace = (0, 0.0, 0, rv, rd, _median(sigma[used]))
         cols = np.arange(ncol)
         side = np.sign(v - np.interp(col, cols, rv))
         flanks = (-1, 1)
@@ -282,16 +318,16 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
                 sel[idx] = False
             if not sel.any():
                 continue
-            V, D = _trace(col[sel], v[sel], ncol, None if previous is None else previous[3], km_per_col)
+            V, D = _trace(col[sel], v[sel], ncol, NO_TRACE if previous is None else previous[3], km_per_col)
             if previous is not None:
                 xp = np.rint(col[sel]).astype(int).clip(0, ncol - 1)
-                gap = np.median((V[xp] - previous[3][xp]) * flank)
+                gap = _median((V[xp] - previous[3][xp]) * flank)
                 rate = gap * sphere.EARTH_RADIUS_KM / max(t - previous[1], 1e-9)
                 if not (settings.min_half_rate <= rate <= settings.max_half_rate):
                     dropped.append({"compartment": int(label), "boundary": int(b), "age_ma": t, "flank": flank,
                                     "points": int(sel.sum()), "implied_half_rate_mm_yr": float(rate)})
                     continue
-            traces.append((flank, t, int(b), V, D, float(np.median(sigma[sel]))))
+            traces.append((flank, t, int(b), V, D, _median(sigma[sel])))
             previous = traces[-1]
     if ridge_trace is None:
         ordered = traces if flanks[0] > 0 else traces[::-1]
