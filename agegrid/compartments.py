@@ -8,6 +8,9 @@ neighbouring compartment on their own side of the line (a segment test against t
 """
 from __future__ import annotations
 
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -250,6 +253,9 @@ def _domain_shapes(spec, polygon) -> list | None:
     return geoms
 
 
+_RASTERIZE_LOCK = threading.Lock()
+
+
 def _domain_block(spec, shapes, rows: slice, cols: slice) -> np.ndarray:
     """Cells of a window whose centre lies in the domain."""
     shape = (rows.stop - rows.start, cols.stop - cols.start)
@@ -259,7 +265,8 @@ def _domain_block(spec, shapes, rows: slice, cols: slice) -> np.ndarray:
     from rasterio.features import rasterize
 
     transform = spec.transform @ Affine.translation(cols.start, rows.start)
-    return rasterize(shapes, out_shape=shape, transform=transform, fill=0, default_value=1, dtype="uint8").astype(bool)
+    with _RASTERIZE_LOCK:  # rasterio's in-memory datasets toggle warning filters, which is not thread-safe
+        return rasterize(shapes, out_shape=shape, transform=transform, fill=0, default_value=1, dtype="uint8").astype(bool)
 
 
 def implied_fracture_zones(ridges: list[np.ndarray], step_deg: float = 0.1) -> list[np.ndarray]:
@@ -376,47 +383,35 @@ class _BlockLabelling:
     """
 
     def __init__(self, spec, shapes, barrier_cells: np.ndarray, near: np.ndarray):
-        from isal import isal_zlib
-
         self.spec = spec
         ny, nx = spec.shape
-        br, bc = spec.chunks
         self.blocks, self.offsets, self.counts = {}, {}, {}
         first_cells, pairs = [], []
         bottom = np.zeros(nx, np.int64)  # provisional ids along the last row of the previous block row
         west, east = np.zeros(ny, np.int64), np.zeros(ny, np.int64)
         self.barrier_in_domain = np.zeros(len(barrier_cells), bool)
-        self._near, self._near_ids = near, np.zeros(len(near), np.int64)
+        self._near_ids = np.zeros(len(near), np.int64)
         total = 0
-        for i in range(-(-ny // br)):
+        for band in _in_order(lambda i: _label_band(spec, shapes, barrier_cells, near, i), -(-ny // spec.chunks[0])):
             right = None
-            band = _domain_block(spec, shapes, slice(i * br, min((i + 1) * br, ny)), slice(0, nx))
-            for j in range(-(-nx // bc)):
-                rows, cols = slice(i * br, min((i + 1) * br, ny)), slice(j * bc, min((j + 1) * bc, nx))
-                domain = band[:, cols].copy()
-                sel = _cells_in(barrier_cells, nx, rows.start, rows.stop, cols.start, cols.stop)
-                rr, cc = np.divmod(barrier_cells[sel], nx)
-                self.barrier_in_domain[sel] = domain[rr - rows.start, cc - cols.start]
-                domain[rr - rows.start, cc - cols.start] = False
-                local, n = ndimage.label(domain, structure=FOUR_CONNECTED)
-                local = local.astype(np.int32, copy=False)
-                self.blocks[i, j] = (isal_zlib.compress(local.tobytes(), 1), local.shape)
-                self.offsets[i, j], self.counts[i, j] = total, n
-                ids = np.where(local > 0, local + total, 0)
-                first_cells.append(_first_cells(local, n, rows.start, cols.start, nx))
-                if i > 0:
-                    pairs.append(np.stack([bottom[cols], ids[0]], -1))
+            for block in band:
+                rows, cols = block.rows, block.cols
+                self.blocks[block.key] = block.compressed
+                self.offsets[block.key], self.counts[block.key] = total, block.count
+                self.barrier_in_domain[block.barriers] = block.barriers_in_domain
+                first_cells.append(block.first_cells)
+                edges = {side: np.where(e > 0, e + total, 0) for side, e in block.edges.items()}
+                if rows.start > 0:
+                    pairs.append(np.stack([bottom[cols], edges["top"]], -1))
                 if right is not None:
-                    pairs.append(np.stack([right, ids[:, 0]], -1))
-                right = ids[:, -1]
-                bottom[cols] = ids[-1]
-                if j == 0:
-                    west[rows] = ids[:, 0]
-                east[rows] = ids[:, -1]
-                q = _cells_in(near, nx, rows.start, rows.stop, cols.start, cols.stop)
-                qr, qc = np.divmod(near[q], nx)
-                self._near_ids[q] = ids[qr - rows.start, qc - cols.start]
-                total += n
+                    pairs.append(np.stack([right, edges["left"]], -1))
+                right = edges["right"]
+                bottom[cols] = edges["bottom"]
+                if cols.start == 0:
+                    west[rows] = edges["left"]
+                east[rows] = edges["right"]
+                self._near_ids[block.near] = np.where(block.near_local > 0, block.near_local + total, 0)
+                total += block.count
         if spec.is_global:
             pairs.append(np.stack([west, east], -1))
         self.total = total
@@ -451,7 +446,63 @@ class _BlockLabelling:
 FOUR_CONNECTED = ndimage.generate_binary_structure(2, 1)
 
 
-@njit(cache=True)
+@dataclass
+class _LabelledBlock:
+    """One block's local labelling: what joining the blocks needs, with the labels compressed."""
+
+    key: tuple[int, int]
+    rows: slice
+    cols: slice
+    count: int
+    compressed: tuple[bytes, tuple[int, int]]
+    first_cells: np.ndarray
+    barriers: np.ndarray
+    barriers_in_domain: np.ndarray
+    edges: dict[str, np.ndarray]
+    near: np.ndarray
+    near_local: np.ndarray
+
+
+def _label_band(spec, shapes, barrier_cells: np.ndarray, near: np.ndarray, i: int) -> list[_LabelledBlock]:
+    """Label the free cells of each block of block row ``i`` by 4-connectivity (local labels 1..n)."""
+    from isal import isal_zlib
+
+    ny, nx = spec.shape
+    br, bc = spec.chunks
+    rows = slice(i * br, min((i + 1) * br, ny))
+    band = _domain_block(spec, shapes, rows, slice(0, nx))
+    blocks = []
+    for j in range(-(-nx // bc)):
+        cols = slice(j * bc, min((j + 1) * bc, nx))
+        domain = band[:, cols].copy()
+        sel = _cells_in(barrier_cells, nx, rows.start, rows.stop, cols.start, cols.stop)
+        rr, cc = np.divmod(barrier_cells[sel], nx)
+        in_domain = domain[rr - rows.start, cc - cols.start]
+        domain[rr - rows.start, cc - cols.start] = False
+        local, n = ndimage.label(domain, structure=FOUR_CONNECTED)
+        local = local.astype(np.int32, copy=False)
+        q = _cells_in(near, nx, rows.start, rows.stop, cols.start, cols.stop)
+        qr, qc = np.divmod(near[q], nx)
+        edges = {"top": local[0].copy(), "bottom": local[-1].copy(), "left": local[:, 0].copy(),
+                 "right": local[:, -1].copy()}
+        blocks.append(_LabelledBlock((i, j), rows, cols, n, (isal_zlib.compress(local.tobytes(), 1), local.shape),
+                                     _first_cells(local, n, rows.start, cols.start, nx), sel, in_domain, edges, q,
+                                     local[qr - rows.start, qc - cols.start]))
+    return blocks
+
+
+def _in_order(work, count: int, ahead: int = 2):
+    """Results of ``work(0) .. work(count - 1)`` in order, computed on threads at most ``ahead`` in advance."""
+    with ThreadPoolExecutor(min(ahead, os.cpu_count() or 1)) as pool:
+        pending = [pool.submit(work, k) for k in range(min(ahead, count))]
+        for k in range(count):
+            result = pending.pop(0).result()
+            if k + ahead < count:
+                pending.append(pool.submit(work, k + ahead))
+            yield result
+
+
+@njit(cache=True, nogil=True)
 def _first_positions(flat: np.ndarray, n: int) -> np.ndarray:
     """Position of the first occurrence of each label 1..n in a flat label array."""
     first = np.full(n, -1, np.int64)
