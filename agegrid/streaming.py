@@ -1,6 +1,6 @@
 """One pass over the grid by windows: every lazy layer computed once per window and handed to sinks.
 
-A window is a band of block rows (as many block columns as fit ``WINDOW_MB``). The layers of a window
+A window is a run of blocks along one block row (as many as fit ``WINDOW_MB``). The layers of a window
 are computed together (layers sharing a computation, like the age engine's blocks, compute it once);
 while the sinks (NetCDF chunks, GeoTIFF sources, table samples) consume one window in a background
 thread, the next is computed, so writing overlaps computing and at most two windows are in memory.
@@ -21,36 +21,51 @@ WINDOW_MB = 128.0
 Sink = Callable[[str, int, int, np.ndarray], None]
 
 
-def windows(spec, bytes_per_cell: int, window_mb: float = WINDOW_MB):
-    """Row and column slices of the windows, aligned on the grid's blocks, in row-major order."""
-    ny, nx = spec.shape
-    rows, cols = spec.chunks
-    width = int(max(cols, min(nx, window_mb * 2**20 / (rows * bytes_per_cell) // cols * cols)))
-    for r0 in range(0, ny, rows):
-        for c0 in range(0, nx, width):
-            yield slice(r0, min(r0 + rows, ny)), slice(c0, min(c0 + width, nx))
+def windows(chunks: tuple[tuple[int, ...], tuple[int, ...]], bytes_per_cell: int, window_mb: float = WINDOW_MB):
+    """Block indices (row, list of columns) of the windows of a grid with dask ``chunks``, row-major."""
+    rows, cols = chunks
+    for i, height in enumerate(rows):
+        width, start = 0, 0
+        for j, w in enumerate(cols):
+            if j > start and (width + w) * height * bytes_per_cell > window_mb * 2**20:
+                yield i, list(range(start, j))
+                width, start = 0, j
+            width += w
+        yield i, list(range(start, len(cols)))
 
 
 def stream(ds: xr.Dataset, names: list[str], spec, sinks: list[Sink], window_mb: float = WINDOW_MB) -> None:
-    """Compute the lazy 2-D variables ``names`` of ``ds`` window by window and feed every block to ``sinks``."""
+    """Compute the lazy 2-D variables ``names`` of ``ds`` window by window and feed every block to ``sinks``.
+
+    Blocks are handed over as dask computes them (no window-sized copies); layers sharing a computation
+    share its tasks, so the age engine runs once per block for all its layers.
+    """
     import dask
 
     if not names:
         return
-    per_cell = sum(ds.variables[n].dtype.itemsize for n in names)
+    arrays = [ds.variables[n].data for n in names]
+    chunks = arrays[0].chunks
+    arrays = [a if a.chunks == chunks else a.rechunk(chunks) for a in arrays]
+    blocks = [a.to_delayed(optimize_graph=False) for a in arrays]
+    r_edges, c_edges = np.cumsum((0,) + chunks[0]), np.cumsum((0,) + chunks[1])
+    per_cell = sum(a.dtype.itemsize for a in arrays)
 
-    def consume(window, values):
-        for name, block in zip(names, values):
-            for sink in sinks:
-                sink(name, window[0].start, window[1].start, block)
+    def consume(i, columns, values):
+        it = iter(values)
+        for name in names:
+            for j in columns:
+                block = next(it)
+                for sink in sinks:
+                    sink(name, int(r_edges[i]), int(c_edges[j]), block)
 
     with ThreadPoolExecutor(1) as writer:
         pending = None
-        for window in windows(spec, per_cell, window_mb):
-            values = dask.compute(*[ds.variables[n].data[window] for n in names])
+        for i, columns in windows(chunks, per_cell, window_mb):
+            values = dask.compute(*[b[i, j] for b in blocks for j in columns])
             if pending is not None:
                 pending.result()
-            pending = writer.submit(consume, window, values)
+            pending = writer.submit(consume, i, columns, values)
         pending.result()
 
 

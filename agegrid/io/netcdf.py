@@ -143,9 +143,10 @@ def create_netcdf(ds: xr.Dataset, staged: Path, spec) -> tuple[dict, list[str]]:
 class ChunkWriter:
     """Fills a NetCDF-4 file's empty chunked layers, compressing chunks on all cores.
 
-    Each chunk is byte-shuffled and deflated here, in parallel threads (ISA-L's deflate, which releases
-    the GIL), and written with HDF5's direct chunk write: the file's own shuffle + deflate filters read it
-    back like any other NetCDF-4 file.
+    Each chunk is byte-shuffled and deflated in parallel threads (ISA-L's deflate, which releases the
+    GIL) while the caller goes on, and written in order with HDF5's direct chunk write: the file's own
+    shuffle + deflate filters read it back like any other NetCDF-4 file. At most a few chunks per
+    thread wait to be written.
     """
 
     def __init__(self, staged: Path, spec, enc: dict, names: list[str], threads: int | None = None):
@@ -155,23 +156,34 @@ class ChunkWriter:
         self.chunks = spec.chunks
         self.file = h5py.File(staged, "r+")
         self.datasets = {n: self.file[n] for n in names}
-        self.pool = ThreadPoolExecutor(threads or os.cpu_count() or 1)
+        self.threads = threads or os.cpu_count() or 1
+        self.pool = ThreadPoolExecutor(self.threads)
+        self.pending: list = []
 
     def write(self, name: str, r0: int, c0: int, block: np.ndarray) -> None:
-        """Write a window of layer ``name`` whose top-left cell is (r0, c0), aligned on chunk edges."""
+        """Queue a block of layer ``name`` whose top-left cell is (r0, c0), aligned on chunk edges."""
         block = _encoded(block, self.enc[name])
         rows, cols = self.chunks
         fill = self.enc[name].get("_FillValue")
-        parts = [(r, c) for r in range(0, block.shape[0], rows) for c in range(0, block.shape[1], cols)]
-        packed = self.pool.map(lambda rc: _deflated(block[rc[0]:rc[0] + rows, rc[1]:rc[1] + cols], self.chunks,
-                                                    fill), parts)
-        target = self.datasets[name].id
-        for (r, c), data in zip(parts, packed):
-            target.write_direct_chunk((r0 + r, c0 + c), data)
+        for r in range(0, block.shape[0], rows):
+            for c in range(0, block.shape[1], cols):
+                part = block[r:r + rows, c:c + cols]
+                self.pending.append((name, (r0 + r, c0 + c), self.pool.submit(_deflated, part, self.chunks, fill)))
+        while len(self.pending) > 2 * self.threads:
+            self._write_first()
+
+    def _write_first(self) -> None:
+        name, offset, packed = self.pending.pop(0)
+        self.datasets[name].id.write_direct_chunk(offset, packed.result())
 
     def close(self) -> None:
-        self.pool.shutdown()
-        self.file.close()
+        """Write what is queued and close the file."""
+        try:
+            while self.pending:
+                self._write_first()
+        finally:
+            self.pool.shutdown()
+            self.file.close()
 
 
 def _deflated(part: np.ndarray, chunks: tuple[int, int], fill) -> bytes:
@@ -191,7 +203,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
 
     The structure is written first (:func:`create_netcdf`); the lazy layers are then computed window by
     window (:func:`agegrid.streaming.stream`) and their chunks written by :class:`ChunkWriter`.
-    ``extra_sinks`` receive the same windows (GeoTIFF sources, table samples).
+    ``extra_sinks`` receive the same blocks (GeoTIFF sources, table samples).
     """
     from agegrid.streaming import stream
 
