@@ -90,6 +90,23 @@ def test_geotiff_input_block_average_and_bilinear(tmp_path):
     assert np.allclose(values, 10 * fx + 3 * fy, atol=1e-3)
 
 
+def test_geotiff_on_the_build_lattice_is_read_as_is(tmp_path):
+    # a random field on the build grid's own lattice, larger than the grid: the cells come back unchanged;
+    # shifted by half a cell, a plane is interpolated (bilinear is exact on a plane)
+    rng = np.random.default_rng(5)
+    field = rng.normal(size=(40, 60)).astype(np.float32)
+    plane = (10 * np.arange(60)[None, :] + 3 * np.arange(40)[:, None]).astype(np.float32)
+    for name, values, west in (("aligned.tif", field, 0.0), ("shifted.tif", plane, 0.05)):
+        with rasterio.open(tmp_path / name, "w", driver="GTiff", width=60, height=40, count=1, dtype="float32",
+                           crs="EPSG:4326", transform=Affine(0.1, 0, west, 0, -0.1, 4.0)) as dst:
+            dst.write(values, 1)
+    spec = GridSpec((1.0, 3.0, 1.0, 3.0), 0.1)  # rows 10..29, columns 10..29 of the aligned source
+    values, _ = read_grid(tmp_path / "aligned.tif", spec)
+    assert np.array_equal(values, field[10:30, 10:30])
+    values, _ = read_grid(tmp_path / "shifted.tif", spec)
+    assert np.allclose(values, plane[10:30, 9:29] + 5.0, atol=1e-3)  # half a cell east of column k - 1
+
+
 def test_netcdf_input_other_longitude_convention(tmp_path):
     lon = np.arange(0.25, 360, 0.5)
     lat = np.arange(-89.75, 90, 0.5)

@@ -111,8 +111,31 @@ def open_grid(path: str | Path, spec) -> SourceGrid:
     raise BadInput("not a NetCDF or GeoTIFF file", path)
 
 
+def _aligned_window(source: SourceGrid, spec) -> tuple[slice, slice] | None:
+    """The source's rows and columns that are exactly the build grid's cells, if its lattice holds them."""
+    src, dst = source.transform, spec.transform
+    if src.b or src.d or not np.isclose(src.a, dst.a, rtol=1e-9, atol=0) or not np.isclose(src.e, dst.e, rtol=1e-9, atol=0):
+        return None
+    if source.crs != rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()):
+        return None
+    col, row = (dst.c - src.c) / src.a, (dst.f - src.f) / src.e
+    c0, r0 = int(round(col)), int(round(row))
+    if abs(col - c0) > 1e-6 or abs(row - r0) > 1e-6:
+        return None
+    ny, nx = spec.shape
+    if r0 < 0 or c0 < 0 or r0 + ny > source.values.shape[0] or c0 + nx > source.values.shape[1]:
+        return None
+    return slice(r0, r0 + ny), slice(c0, c0 + nx)
+
+
 def resample(source: SourceGrid, spec, name: str = "") -> np.ndarray:
-    """Resample a source grid onto the build grid (float32, NaN where the source has no data)."""
+    """Resample a source grid onto the build grid (float32, NaN where the source has no data).
+
+    A source on the build grid's own lattice (same CRS and cell size, cell edges aligned) is read as is.
+    """
+    window = _aligned_window(source, spec)
+    if window is not None:
+        return source.values[window].astype(np.float32)
     target = np.full(spec.shape, np.nan, dtype=np.float32)
     source_cell = abs(source.transform.a * source.transform.e) ** 0.5
     same_kind = source.crs.is_geographic == spec.geographic
