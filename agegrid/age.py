@@ -536,5 +536,12 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
 
     packed_blocks = da.map_blocks(block, template, dtype=np.uint8, new_axis=0,
                                   chunks=((BLOCK_BYTES_PER_CELL,),) + template.chunks)
-    return {name: da.map_blocks(block_layer, packed_blocks, name, drop_axis=0, dtype=LAYER_DTYPES[name])
+    # blockwise without concatenation: each layer is a view of its block's buffer, not a copy of it
+    return {name: da.blockwise(_layer_of, "ij", packed_blocks, "kij", name, None, concatenate=False,
+                               dtype=LAYER_DTYPES[name], meta=np.empty((0, 0), LAYER_DTYPES[name]))
             for name in LAYERS}
+
+
+def _layer_of(buffers: list[np.ndarray], name: str) -> np.ndarray:
+    """One layer of a block from the one-element list of its buffers (see :func:`age_layers`)."""
+    return block_layer(buffers[0], name)
