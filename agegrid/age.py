@@ -349,18 +349,11 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
         bounds=np.array([tr[2] for tr in ordered], dtype=np.int32))
 
 
-def _extent_samples(spec, compartments, target: int = 100_000) -> dict[int, np.ndarray]:
+def _extent_samples(spec, compartments) -> dict[int, np.ndarray]:
     """Unit vectors of a decimated sample of each compartment's cells, to size its ``u`` axis."""
-    ny, nx = spec.shape
-    step = max(1, int(np.sqrt(ny * nx / target)))
-    rows = np.unique(np.r_[np.arange(0, ny, step), ny - 1])
-    cols = np.unique(np.r_[np.arange(0, nx, step), nx - 1])
-    labels = compartments.labels_on(rows, cols)
-    xx, yy = np.meshgrid(spec.x[cols], spec.y[rows])
-    lon, lat = (xx, yy) if spec.geographic else spec.to_lonlat.transform(xx, yy)
-    lon, lat = np.asarray(lon), np.asarray(lat)
-    xyz = sphere.to_xyz(lon, lat)
-    return {int(k): xyz[labels == k] for k in np.unique(labels) if k > 0}
+    rows, cols, labels = compartments.sample
+    x, y, z = block_xyz(spec, rows, cols)
+    return {int(k): np.stack([x[m], y[m], z[m]], -1) for k in np.unique(labels) if k > 0 for m in [labels == k]}
 
 
 def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel:
@@ -485,8 +478,9 @@ def block_layer(buffer: np.ndarray, name: str) -> np.ndarray:
     return buffer[k:k + 4].reshape(-1).view(np.float32).reshape(shape)
 
 
-def block_xyz(spec, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Unit-vector components of a window's cell centres (separable trigonometry on a geographic grid)."""
+def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Unit-vector components of the cell centres of a window or of a sub-grid (slices or index arrays),
+    with separable trigonometry on a geographic grid."""
     if spec.geographic:
         lam, phi = np.radians(spec.x[cols]), np.radians(spec.y[rows])
         cos_phi = np.cos(phi)[:, None]

@@ -39,6 +39,8 @@ class Compartments:
     _barrier_labels: np.ndarray = field(repr=False)
     _near_cells: np.ndarray = field(repr=False)
     _near_labels: np.ndarray = field(repr=False)
+    #: A decimated sub-grid of the labels: (row indices, column indices, labels), about SAMPLE_CELLS cells.
+    sample: tuple = field(default=None, repr=False)
     _segment_cache: tuple | None = field(default=None, repr=False)
 
     def window(self, rows: slice, cols: slice) -> tuple[np.ndarray, np.ndarray]:
@@ -86,23 +88,6 @@ class Compartments:
         flat = rows * nx + cols
         hit, where = _lookup(self._barrier_cells, flat)
         out[hit] = self._barrier_labels[where[hit]]
-        return out
-
-    def labels_on(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
-        """Labels on the sub-grid of the sorted row and column indices ``rows`` x ``cols``."""
-        rows, cols = np.asarray(rows, np.int64), np.asarray(cols, np.int64)
-        nx = self.spec.shape[1]
-        out = np.zeros((len(rows), len(cols)), np.int32)
-        br, bc = self.spec.chunks
-        for i in np.unique(rows // br):
-            r_sel = np.flatnonzero(rows // br == i)
-            for j in np.unique(cols // bc):
-                c_sel = np.flatnonzero(cols // bc == j)
-                local = self._local(i, j)[np.ix_(rows[r_sel] - i * br, cols[c_sel] - j * bc)]
-                out[np.ix_(r_sel, c_sel)] = self._tables[i, j][local]
-        rr, cc = np.divmod(self._barrier_cells, nx)
-        on = np.isin(rr, rows) & np.isin(cc, cols)
-        out[np.searchsorted(rows, rr[on]), np.searchsorted(cols, cc[on])] = self._barrier_labels[on]
         return out
 
     def assign(self, spec, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
@@ -316,9 +301,14 @@ def build_compartments(spec, barriers: list[np.ndarray], domain_polygon=None, ex
     in_domain = labelling.barrier_in_domain
     comp = Compartments(spec, count, paths, labelling.blocks, tables, barrier_cells[in_domain],
                         np.zeros(int(in_domain.sum()), np.int32), near, labelling.near_labels())
+    rows, cols = labelling.sample_rows, labelling.sample_cols
+    sample = labelling.sample_labels()
     if len(comp._barrier_cells):
-        rows, cols = np.divmod(comp._barrier_cells, spec.shape[1])
-        comp._barrier_labels = comp._side_labels(cols.astype(float), rows.astype(float))
+        br, bc = np.divmod(comp._barrier_cells, spec.shape[1])
+        comp._barrier_labels = comp._side_labels(bc.astype(float), br.astype(float))
+        on = np.isin(br, rows) & np.isin(bc, cols)
+        sample[np.searchsorted(rows, br[on]), np.searchsorted(cols, bc[on])] = comp._barrier_labels[on]
+    comp.sample = rows, cols, sample
     return comp
 
 
@@ -391,8 +381,13 @@ class _BlockLabelling:
         west, east = np.zeros(ny, np.int64), np.zeros(ny, np.int64)
         self.barrier_in_domain = np.zeros(len(barrier_cells), bool)
         self._near_ids = np.zeros(len(near), np.int64)
+        step = max(1, int(np.sqrt(ny * nx / SAMPLE_CELLS)))
+        self.sample_rows = np.unique(np.r_[np.arange(0, ny, step), ny - 1])
+        self.sample_cols = np.unique(np.r_[np.arange(0, nx, step), nx - 1])
+        self._sample_ids = np.zeros((len(self.sample_rows), len(self.sample_cols)), np.int64)
         total = 0
-        for band in _in_order(lambda i: _label_band(spec, shapes, barrier_cells, near, i), -(-ny // spec.chunks[0])):
+        for band in _in_order(lambda i: _label_band(spec, shapes, barrier_cells, near, self.sample_rows,
+                                                    self.sample_cols, i), -(-ny // spec.chunks[0])):
             right = None
             for block in band:
                 rows, cols = block.rows, block.cols
@@ -411,6 +406,7 @@ class _BlockLabelling:
                     west[rows] = edges["left"]
                 east[rows] = edges["right"]
                 self._near_ids[block.near] = np.where(block.near_local > 0, block.near_local + total, 0)
+                self._sample_ids[np.ix_(*block.sampled)] = np.where(block.sample_local > 0, block.sample_local + total, 0)
                 total += block.count
         if spec.is_global:
             pairs.append(np.stack([west, east], -1))
@@ -442,8 +438,14 @@ class _BlockLabelling:
         """Global labels of the cells near barriers (0 where not free)."""
         return self.global_of[self._near_ids]
 
+    def sample_labels(self) -> np.ndarray:
+        """Global labels of the free cells of the sampled sub-grid (0 elsewhere)."""
+        return self.global_of[self._sample_ids]
+
 
 FOUR_CONNECTED = ndimage.generate_binary_structure(2, 1)
+#: About how many cells the decimated sample of the labels holds (:attr:`Compartments.sample`).
+SAMPLE_CELLS = 100_000
 
 
 @dataclass
@@ -461,9 +463,12 @@ class _LabelledBlock:
     edges: dict[str, np.ndarray]
     near: np.ndarray
     near_local: np.ndarray
+    sampled: tuple[np.ndarray, np.ndarray]
+    sample_local: np.ndarray
 
 
-def _label_band(spec, shapes, barrier_cells: np.ndarray, near: np.ndarray, i: int) -> list[_LabelledBlock]:
+def _label_band(spec, shapes, barrier_cells: np.ndarray, near: np.ndarray, sample_rows: np.ndarray,
+                sample_cols: np.ndarray, i: int) -> list[_LabelledBlock]:
     """Label the free cells of each block of block row ``i`` by 4-connectivity (local labels 1..n)."""
     from isal import isal_zlib
 
@@ -471,6 +476,7 @@ def _label_band(spec, shapes, barrier_cells: np.ndarray, near: np.ndarray, i: in
     br, bc = spec.chunks
     rows = slice(i * br, min((i + 1) * br, ny))
     band = _domain_block(spec, shapes, rows, slice(0, nx))
+    in_rows = np.flatnonzero((sample_rows >= rows.start) & (sample_rows < rows.stop))
     blocks = []
     for j in range(-(-nx // bc)):
         cols = slice(j * bc, min((j + 1) * bc, nx))
@@ -485,9 +491,11 @@ def _label_band(spec, shapes, barrier_cells: np.ndarray, near: np.ndarray, i: in
         qr, qc = np.divmod(near[q], nx)
         edges = {"top": local[0].copy(), "bottom": local[-1].copy(), "left": local[:, 0].copy(),
                  "right": local[:, -1].copy()}
+        in_cols = np.flatnonzero((sample_cols >= cols.start) & (sample_cols < cols.stop))
+        sampled = local[np.ix_(sample_rows[in_rows] - rows.start, sample_cols[in_cols] - cols.start)]
         blocks.append(_LabelledBlock((i, j), rows, cols, n, (isal_zlib.compress(local.tobytes(), 1), local.shape),
                                      _first_cells(local, n, rows.start, cols.start, nx), sel, in_domain, edges, q,
-                                     local[qr - rows.start, qc - cols.start]))
+                                     local[qr - rows.start, qc - cols.start], (in_rows, in_cols), sampled))
     return blocks
 
 

@@ -29,6 +29,9 @@ def test_block_labels_equal_one_global_labelling(chunk):
     assert np.array_equal(labels[free], reference[free])
     assert (labels[barrier & domain] > 0).mean() > 0.99  # barrier cells join a neighbouring compartment
     assert not labels[~domain].any()
+    rows, cols, sample = comps.sample  # the decimated sample kept while labelling
+    assert np.array_equal(sample, labels[np.ix_(rows, cols)])
+    assert rows[-1] == spec.shape[0] - 1 and cols[-1] == spec.shape[1] - 1
 
 
 def test_a_barrier_stopping_short_of_the_edge_does_not_leak():
