@@ -10,6 +10,7 @@ import csv
 import io
 import logging
 import sys
+import threading
 import time
 from datetime import datetime, timezone
 from pathlib import Path
@@ -42,7 +43,7 @@ from agegrid.lock import BuildLock
 from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
 from agegrid.notices import CAUTION
 from agegrid.qa import check_picks
-from agegrid.report import build_report
+from agegrid.report import build_report, preload_plotting
 from agegrid.residual import binned_statistics, fit_sqrt_age, residual
 from agegrid.sediment import lithology_from_config
 from agegrid.streaming import Samples
@@ -290,6 +291,16 @@ def _cog_writer(config, ds: xr.Dataset, spec, attrs: dict, out_dir: Path) -> Cog
                      {n: ds[n].dtype for n in names}, {n: enc[n]["_FillValue"] for n in names})
 
 
+def _describe_outputs(staged: dict[Path, Path], threads: int = 4) -> list[dict]:
+    """Size and sha256 of each staged output under its target's path (hashed on several threads)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    pairs = [(t, s) for t, s in staged.items() if s.exists()]
+    with ThreadPoolExecutor(threads) as pool:
+        described = list(pool.map(describe_file, [s for _, s in pairs]))
+    return [{"path": str(t), **{k: v for k, v in d.items() if k != "path"}} for (t, _), d in zip(pairs, described)]
+
+
 def _depth_tables(config, sample: xr.Dataset, stride: int) -> tuple[str, dict]:
     """The age-binned residual statistics CSV and the sqrt(age) fit of corrected depth, from the samples."""
     names = ["age", "observed_depth", "sediment_correction"] + [f"residual_{m}" for m in config.depth.models]
@@ -378,6 +389,8 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if "geotiff" in config.output.formats:
                     cogs = _cog_writer(config, ds, spec, attrs, out_dir)
                     sinks.append(cogs.write)
+                if config.output.report:  # import the plotting library while the layers are computed
+                    threading.Thread(target=preload_plotting, daemon=True).start()
                 with stages("compute and write netcdf"), _progress(progress and sched["kind"] == "threads"):
                     staged_nc = write_netcdf(ds, nc_target, spec, sinks)
                 if "netcdf" in config.output.formats:
@@ -408,8 +421,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if config.inputs.bathymetry:
                     target = out_dir / f"{config.name}_depth_stats.csv"
                     staged[target] = _stage_text(target, table)
-            outputs = [{"path": str(t), **{k: v for k, v in describe_file(s).items() if k != "path"}}
-                       for t, s in staged.items() if s.exists()]
+            outputs = _describe_outputs(staged)
             manifest = {
                 "agegrid": __version__, "name": config.name,
                 "built": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -432,8 +444,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
             staged[out_dir / "manifest.json"] = _stage_text(out_dir / "manifest.json", to_json(manifest))
             if "netcdf" not in config.output.formats:
                 staged_nc.unlink()
-            for target, source in staged.items():
-                atomic.replace(source, target)
+            atomic.replace_all(staged)
             staged.clear()
             cache.prune()
         finally:

@@ -30,9 +30,14 @@ def _matplotlib():
     return plt
 
 
+def preload_plotting() -> None:
+    """Import the plotting library ahead of the report (a build runs this on a background thread)."""
+    _matplotlib()
+
+
 def _png(fig) -> str:
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=110, bbox_inches="tight")
+    fig.savefig(buffer, format="png", dpi=110)  # the figures' own layout: a tight box would draw them twice
     _matplotlib().close(fig)
     return base64.b64encode(buffer.getvalue()).decode("ascii")
 

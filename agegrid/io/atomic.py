@@ -36,6 +36,24 @@ def replace(staged: Path, target: Path) -> None:
         os.replace(staged, target)
 
 
+def replace_all(staged: dict[Path, Path], threads: int = 4) -> None:
+    """Move staged outputs ({target: staged}) over their targets: all files flushed to disk first, on
+    several threads (the file system overlaps the flushes), then renamed one by one."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    def flush(path: Path) -> None:
+        with open(path, "rb") as fh:
+            os.fsync(fh.fileno())
+
+    with ThreadPoolExecutor(threads) as pool:
+        list(pool.map(flush, [s for s in staged.values() if not s.is_dir()]))
+    for target, source in staged.items():
+        if source.is_dir():
+            replace(source, target)
+        else:
+            os.replace(source, target)
+
+
 def atomic_write_text(target: Path, text: str) -> None:
     """Write a text file atomically."""
     staged = staging_path(Path(target))
