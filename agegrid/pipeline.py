@@ -214,23 +214,23 @@ def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[di
         with stages("observed depth"):
             values, source_attrs = read_grid(config.inputs.bathymetry, spec)
             depth, statement = to_depth(values, source_attrs, config.depth.bathymetry_sign)
+            del values  # one grid-sized array is held from here on (two with a sediment correction)
             facts["notes"].append(statement)
             log.info(statement)
-            corrected = depth
-            layers["observed_depth"] = da.from_array(depth.astype(np.float32), chunks=spec.chunks)
+            layers["observed_depth"] = corrected = da.from_array(np.asarray(depth, np.float32), chunks=spec.chunks)
             attrs["observed_depth"] = {**attributes("observed_depth"), "comment": statement}
             if config.inputs.sediment:
                 thickness, _ = read_grid(config.inputs.sediment, spec)
                 lith = lithology_from_config(config.sediment)
                 correction = lith.correction(thickness).astype(np.float32)
-                corrected = depth + np.where(np.isfinite(correction), correction, 0.0)
+                corrected = da.from_array(depth + np.where(np.isfinite(correction), correction, np.float32(0)),
+                                          chunks=spec.chunks)
                 layers["sediment_correction"] = da.from_array(correction, chunks=spec.chunks)
                 attrs["sediment_correction"] = {**attributes("sediment_correction"),
                                                 "comment": f"Airy unloading, {lith.name}: {lith.reference}"}
                 facts["sediment"] = {k: getattr(lith, k) for k in ("name", "surface_porosity", "compaction_per_km",
                                                                    "grain_density", "mantle_density",
                                                                    "water_density", "reference")}
-            corrected = da.from_array(corrected.astype(np.float32), chunks=spec.chunks)
             for name in config.depth.models:
                 layers[f"residual_{name}"] = residual(layers[f"depth_{name}"], corrected).astype(np.float32)
                 attrs[f"residual_{name}"] = attributes(f"residual_{name}")
