@@ -30,6 +30,8 @@ stated choices, not published values).
 from __future__ import annotations
 
 import logging
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import dask.array as da
@@ -504,15 +506,17 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
     packed = PackedModel.pack(model)
     settings = model.settings
     if cache is not None:
-        keys = {}
         rows, cols = template.chunks
         r_edges, c_edges = np.cumsum((0,) + rows), np.cumsum((0,) + cols)
-        for i in range(len(rows)):
-            for j in range(len(cols)):
-                window = (slice(r_edges[i], r_edges[i + 1]), slice(c_edges[j], c_edges[j + 1]))
-                keys[i, j] = cache.key(packed, settings, (i, j, chunks), *compartments.window(*window),
-                                       block_xyz(spec, *window))
-        cache.plan(keys)
+
+        def key(ij):
+            i, j = ij
+            window = (slice(r_edges[i], r_edges[i + 1]), slice(c_edges[j], c_edges[j + 1]))
+            return cache.key(packed, settings, (i, j, chunks), *compartments.window(*window), block_xyz(spec, *window))
+
+        blocks = [(i, j) for i in range(len(rows)) for j in range(len(cols))]
+        with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing and decompressing release the GIL
+            cache.plan(dict(zip(blocks, pool.map(key, blocks))))
 
     def block(_, block_info=None):
         info = block_info[0]

@@ -77,7 +77,8 @@ class BlockCache:
         digest.update(np.ascontiguousarray(labels).tobytes())
         digest.update(np.ascontiguousarray(domain).tobytes())
         x, y, z = xyz
-        for label in np.unique(labels):
+        present = np.flatnonzero(np.bincount(np.maximum(labels, 0).ravel()))  # the labels in the block, sorted
+        for label in present:
             if label <= 0 or label >= len(packed.has) or not packed.has[label]:
                 continue
             sel = labels == label
