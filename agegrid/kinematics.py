@@ -22,26 +22,37 @@ def _circular_mean(degrees: np.ndarray) -> float:
 def rate_rows(compartment, flank, age, half_rate, full_rate, asymmetry, azimuth, band_myr: float) -> list[dict]:
     """Rows of the rate table from flattened layers; segments are compartments (see the ``compartment`` layer)."""
     ok = np.isfinite(age) & np.isfinite(half_rate) & (flank != 0)
-    comp, fl, age, hr = compartment[ok], flank[ok], age[ok], half_rate[ok]
-    fr, asym, az = full_rate[ok], asymmetry[ok], azimuth[ok]
-    band = np.floor(age / band_myr).astype(np.int64)
+    band = np.floor(age[ok] / band_myr).astype(np.int64)
+    order = np.lexsort((band, flank[ok], compartment[ok]))  # one sort: groups by segment, flank, band
+    comp, fl, band = compartment[ok][order], flank[ok][order], band[order]
+    hr, fr, asym, az = (a[ok][order] for a in (half_rate, full_rate, asymmetry, azimuth))
+    side_starts = _starts(comp, fl)
+    group_starts = _starts(comp, fl, band)
     rows = []
-    for seg in np.unique(comp):
-        for side in (-1, 1):
-            on = (comp == seg) & (fl == side)
-            if not on.any():
-                continue
-            heading = round(_circular_mean(az[on]), 1)
-            for b in np.unique(band[on]):
-                sel = on & (band == b)
-                both = sel & np.isfinite(fr)
-                rows.append({"segment": int(seg), "flank": int(side), "flank_azimuth_deg": heading,
-                             "age_from_myr": round(b * band_myr, 6), "age_to_myr": round((b + 1) * band_myr, 6),
-                             "cells": int(sel.sum()), "half_rate_mm_yr": round(float(np.median(hr[sel])), 3),
-                             "full_rate_mm_yr": round(float(np.median(fr[both])), 3) if both.any() else "",
-                             "asymmetry_percent": round(float(np.median(asym[both])), 2) if both.any() else "",
-                             "full_rate_cells": int(both.sum())})
+    for s0, s1 in zip(side_starts, np.r_[side_starts[1:], len(comp)]):
+        heading = round(_circular_mean(az[s0:s1]), 1)
+        inside = group_starts[(group_starts >= s0) & (group_starts < s1)]
+        for g0, g1 in zip(inside, np.r_[inside[1:], s1]):
+            finite = np.isfinite(fr[g0:g1])
+            b = band[g0]
+            rows.append({"segment": int(comp[g0]), "flank": int(fl[g0]), "flank_azimuth_deg": heading,
+                         "age_from_myr": round(b * band_myr, 6), "age_to_myr": round((b + 1) * band_myr, 6),
+                         "cells": int(g1 - g0), "half_rate_mm_yr": round(float(np.median(hr[g0:g1])), 3),
+                         "full_rate_mm_yr": round(float(np.median(fr[g0:g1][finite])), 3) if finite.any() else "",
+                         "asymmetry_percent": round(float(np.median(asym[g0:g1][finite])), 2) if finite.any() else "",
+                         "full_rate_cells": int(finite.sum())})
     return rows
+
+
+def _starts(*keys: np.ndarray) -> np.ndarray:
+    """Where a run of equal keys starts in arrays sorted by those keys."""
+    if not len(keys[0]):
+        return np.zeros(0, np.int64)
+    change = np.zeros(len(keys[0]), bool)
+    change[0] = True
+    for key in keys:
+        change[1:] |= key[1:] != key[:-1]
+    return np.flatnonzero(change)
 
 
 RATE_LAYERS = ("compartment", "flank", "age", "half_rate", "full_rate", "asymmetry", "spreading_azimuth")
