@@ -448,11 +448,12 @@ FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CO
 
 
 def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, domain: np.ndarray,
-                   xyz: tuple[np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
+                   factors: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
     """All :data:`LAYERS` of one block of cells, packed in one byte array (see :func:`block_layer`).
 
-    ``xyz`` holds three 2-D arrays. The float64 planes of ``age_kernel.WIDE`` come first, then the
-    float32 planes of ``age_kernel.NARROW``: one allocation, each plane contiguous.
+    ``factors`` are the block's unit-vector factors (:func:`block_factors`). The float64 planes of
+    ``age_kernel.WIDE`` come first, then the float32 planes of ``age_kernel.NARROW``: one allocation,
+    each plane contiguous.
     """
     from agegrid.age_kernel import evaluate
 
@@ -462,8 +463,7 @@ def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, 
     wide = flat[:8 * len(WIDE) * cells].view(np.float64).reshape((len(WIDE),) + labels.shape)
     narrow = flat[8 * len(WIDE) * cells:].view(np.float32).reshape((len(NARROW),) + labels.shape)
     p = packed
-    x, y, z = (np.ascontiguousarray(c, dtype=np.float64) for c in xyz)
-    evaluate(x, y, z, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
+    evaluate(*factors, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
              GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, wide, narrow)
@@ -480,19 +480,28 @@ def block_layer(buffer: np.ndarray, name: str) -> np.ndarray:
     return buffer[k:k + 4].reshape(-1).view(np.float32).reshape(shape)
 
 
-def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Unit-vector components of the cell centres of a window or of a sub-grid (slices or index arrays),
-    with separable trigonometry on a geographic grid."""
+def block_factors(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Factors ``(scale, fx, fy, fz)`` of the unit vectors ``(scale fx, scale fy, fz)`` of a window's or a
+    sub-grid's cell centres (slices or index arrays), as 2-D arrays of the window's shape.
+
+    On a geographic grid the trigonometry is separable: ``scale = cos(lat)`` and ``fz = sin(lat)`` vary by
+    row only and ``fx, fy = cos(lon), sin(lon)`` by column only, so they are broadcast views of 1-D arrays
+    (nothing of the window's size is computed or stored); on a projected grid ``scale`` is 1.
+    """
     if spec.geographic:
         lam, phi = np.radians(spec.x[cols]), np.radians(spec.y[rows])
-        cos_phi = np.cos(phi)[:, None]
-        x = cos_phi * np.cos(lam)[None, :]
-        y = cos_phi * np.sin(lam)[None, :]
-        z = np.repeat(np.sin(phi)[:, None], len(lam), axis=1)
-        return x, y, z
+        shape = (len(phi), len(lam))
+        return (np.broadcast_to(np.cos(phi)[:, None], shape), np.broadcast_to(np.cos(lam)[None, :], shape),
+                np.broadcast_to(np.sin(lam)[None, :], shape), np.broadcast_to(np.sin(phi)[:, None], shape))
     lon, lat = spec.lonlat(rows, cols)
     xyz = sphere.to_xyz(lon, lat)
-    return xyz[..., 0], xyz[..., 1], xyz[..., 2]
+    return np.broadcast_to(np.ones(()), lon.shape), xyz[..., 0], xyz[..., 1], xyz[..., 2]
+
+
+def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Unit-vector components of a window's or a sub-grid's cell centres (see :func:`block_factors`)."""
+    scale, fx, fy, fz = block_factors(spec, rows, cols)
+    return scale * fx, scale * fy, np.array(fz)
 
 
 def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.Array]:
@@ -527,7 +536,7 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
             if stored is not None:
                 return stored
         window = slice(r0, r1), slice(c0, c1)
-        result = evaluate_block(packed, settings, *compartments.window(*window), block_xyz(spec, *window))
+        result = evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window))
         if key is not None:
             cache.store(key, result)
         return result

@@ -41,10 +41,10 @@ def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
 
 
 @njit(cache=True, nogil=True)
-def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
+def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
              sigma, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, wide, narrow):
     """Fill ``wide`` (float64 planes of :data:`WIDE`) and ``narrow`` (float32 planes of :data:`NARROW`)
-    for unit vectors (x, y, z) of a block of cells.
+    for the unit vectors (rs rx, rs ry, rz) of a block of cells (2-D arrays; broadcast views welcome).
 
     ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far).
     """
@@ -68,7 +68,7 @@ def evaluate(x, y, z, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, t
             narrow[FLAG, i, jj] = flags[3]
             if lab <= 0 or lab >= has.shape[0] or not has[lab]:
                 continue
-            px, py, pz = x[i, jj], y[i, jj], z[i, jj]
+            px, py, pz = rs[i, jj] * rx[i, jj], rs[i, jj] * ry[i, jj], rz[i, jj]
             f0 = frames[lab]
             xc = px * f0[0, 0] + py * f0[0, 1] + pz * f0[0, 2]
             if xc <= 0.17:
