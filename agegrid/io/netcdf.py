@@ -189,13 +189,14 @@ class ChunkWriter:
 def _deflated(part: np.ndarray, chunks: tuple[int, int], fill) -> bytes:
     """One chunk as HDF5 stores it with shuffle + deflate: padded to the full chunk shape, shuffled, deflated."""
     from isal import isal_zlib
-    from numcodecs import Shuffle
 
     if part.shape != chunks:
         full = np.full(chunks, 0 if fill is None else fill, dtype=part.dtype)
         full[:part.shape[0], :part.shape[1]] = part
         part = full
-    return isal_zlib.compress(Shuffle(part.dtype.itemsize).encode(np.ascontiguousarray(part)), COMPRESSION_LEVEL)
+    # HDF5's shuffle filter: byte k of every value together, for k = 0 .. itemsize - 1
+    shuffled = np.ascontiguousarray(np.ascontiguousarray(part).view(np.uint8).reshape(-1, part.dtype.itemsize).T)
+    return isal_zlib.compress(shuffled, COMPRESSION_LEVEL)
 
 
 def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
