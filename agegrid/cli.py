@@ -98,17 +98,15 @@ def cmd_date(args) -> int:
 
 
 def cmd_retime(args) -> int:
-    import xarray as xr
-
     from agegrid import timescale
     from agegrid.io.atomic import replace
-    from agegrid.io.netcdf import write_netcdf
+    from agegrid.io.netcdf import open_netcdf, write_netcdf
     from agegrid.grid import GridSpec
     from agegrid.retime import retime_dataset
 
     scale = timescale.load(args.timescale)
     try:
-        ds = xr.open_dataset(args.grid, mask_and_scale=True)
+        ds = open_netcdf(args.grid, mask_and_scale=True)
     except (OSError, ValueError) as exc:
         raise BadInput(f"not a readable NetCDF file ({exc})", args.grid) from None
     with ds:

@@ -30,7 +30,7 @@ from agegrid.errors import BadInput
 from agegrid.grid import GridSpec
 from agegrid.io import atomic
 from agegrid.io.geotiff import CogWriter
-from agegrid.io.netcdf import dataset, encoding, limit_chunk_cache, write_netcdf
+from agegrid.io.netcdf import dataset, encoding, limit_chunk_cache, open_netcdf, write_netcdf
 from agegrid.io.points import read_picks
 from agegrid.io.rasters import read_grid
 from agegrid.io.vectors import read_lines, read_polygons
@@ -350,7 +350,9 @@ def scheduler(address: str | None = None, workers: int | None = None):
             if cluster is not None:
                 cluster.close()
     else:
-        with dask.config.set(scheduler="threads"):
+        # the threaded scheduler itself rather than its name: naming it makes dask import distributed to
+        # look for a client
+        with dask.config.set(scheduler=dask.threaded.get):
             yield {"kind": "threads"}
 
 
@@ -408,7 +410,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     rates_text = rate_table(flat, samples.stride, config.kinematics.age_band_myr)
                     staged[target] = _stage_text(target, rates_text)
                 if "zarr" in config.output.formats or magnetic_enabled(config):
-                    with xr.open_dataset(staged_nc, chunks={}, mask_and_scale=True) as written:
+                    with open_netcdf(staged_nc, chunks={}, mask_and_scale=True) as written:
                         if "zarr" in config.output.formats:
                             from agegrid.io.zarr import write_zarr
 

@@ -342,10 +342,9 @@ def build_report(ds, manifest: dict, rates_csv: str | None = None, depth_csv: st
 
 def report_from_directory(directory: Path) -> Path:
     """Regenerate ``report.html`` from an existing output directory, without rebuilding."""
-    import xarray as xr
-
     from agegrid.errors import BadInput
     from agegrid.io.atomic import atomic_write_text
+    from agegrid.io.netcdf import open_netcdf
 
     directory = Path(directory)
     manifest_path = directory / "manifest.json"
@@ -360,7 +359,7 @@ def report_from_directory(directory: Path) -> Path:
     for key in ("rates", "depth_stats"):
         path = directory / f"{name}_{key}.csv"
         texts[key] = path.read_text() if path.is_file() else None
-    with xr.open_dataset(nc) as ds:
+    with open_netcdf(nc) as ds:
         page = build_report(ds, manifest, texts["rates"], texts["depth_stats"])
     target = directory / "report.html"
     atomic_write_text(target, page)

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from agegrid import timescale
-from agegrid.age import LAYERS, Settings, age_layers, build_age_model
+from agegrid.age import Settings, age_layers, build_age_model
 from agegrid.compartments import build_compartments
 from agegrid.control import build_control
 from agegrid.grid import GridSpec

@@ -1,13 +1,11 @@
 """The command line: date, timescales, models, validate, demo, the build lock."""
 import csv
 import json
-import os
 import socket
 import subprocess
 import sys
 from pathlib import Path
 
-import pytest
 
 from agegrid import timescale
 from agegrid.cli import main

@@ -1,6 +1,5 @@
 """Outputs: CF-1.8 NetCDF (IOOS compliance-checker), COG read back by GDAL (rasterio), manifest."""
 import json
-import shutil
 import subprocess
 import sys
 from pathlib import Path

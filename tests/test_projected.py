@@ -1,7 +1,5 @@
 """Projected and polar grids (EPSG:3031), Zarr output and the provenance manifest."""
 import json
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np

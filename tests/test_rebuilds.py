@@ -1,6 +1,5 @@
 """Incremental, scheduled and distributed rebuilds."""
 import json
-import shutil
 from pathlib import Path
 
 import numpy as np

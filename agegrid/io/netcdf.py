@@ -111,6 +111,14 @@ def encoding(ds: xr.Dataset, spec) -> dict:
     return enc
 
 
+def open_netcdf(path, **kwargs) -> xr.Dataset:
+    """``xarray.open_dataset`` with the netCDF4 backend named, so xarray does not load every installed
+    backend's plugin to guess one (some take a second to import)."""
+    from xarray.backends import NetCDF4BackendEntrypoint
+
+    return xr.open_dataset(path, engine=NetCDF4BackendEntrypoint, **kwargs)
+
+
 def create_netcdf(ds: xr.Dataset, staged: Path, spec) -> tuple[dict, list[str]]:
     """Write a dataset's structure to ``staged``: coordinates, attributes, and every in-memory variable.
 
@@ -231,4 +239,4 @@ def _encoded(block: np.ndarray, enc: dict) -> np.ndarray:
     return block.astype(dtype, copy=False)
 
 
-__all__ = ["dataset", "encoding", "create_netcdf", "ChunkWriter", "write_netcdf", "replace"]
+__all__ = ["dataset", "encoding", "open_netcdf", "create_netcdf", "ChunkWriter", "write_netcdf", "replace"]

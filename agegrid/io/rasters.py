@@ -38,10 +38,10 @@ def _regular(coord: np.ndarray, path, name) -> float:
 
 
 def _open_netcdf(path: Path, spec) -> SourceGrid:
-    import xarray as xr
+    from agegrid.io.netcdf import open_netcdf
 
     try:
-        ds = xr.open_dataset(path, decode_times=False, mask_and_scale=True)
+        ds = open_netcdf(path, decode_times=False, mask_and_scale=True)
     except Exception as exc:  # netCDF4/h5py raise many kinds for a damaged or foreign file
         raise BadInput(f"not a readable NetCDF or GeoTIFF file ({type(exc).__name__}: {exc})", path) from None
     with ds:

@@ -39,7 +39,9 @@ def store_arrays_equal(zarr_path: Path, netcdf_path: Path) -> bool:
     """True when every variable of a Zarr store equals the NetCDF's, NaN for NaN (for tests and checks)."""
     import xarray as xr
 
-    with xr.open_zarr(zarr_path) as z, xr.open_dataset(netcdf_path) as n:
+    from agegrid.io.netcdf import open_netcdf
+
+    with xr.open_zarr(zarr_path) as z, open_netcdf(netcdf_path) as n:
         if set(z.data_vars) != set(n.data_vars):
             return False
         return all(np.array_equal(z[v].values, n[v].values, equal_nan=z[v].dtype.kind == "f") for v in n.data_vars)
