@@ -14,7 +14,11 @@ A cell at (u, v) takes the two traces that bracket its v in its column, and the 
 ``t_a + f (t_b - t_a)`` with ``f`` the fraction of the great-circle distance between them (the
 distance-ratio rule for gridding between dated isochrons). Beyond the outermost trace the last pair's
 rate is continued up to ``max_extrapolation_myr``; beyond a ridge with no conjugate control the
-conjugate flank is mirrored. The same pair gives the half-rate (their perpendicular great-circle
+conjugate flank is mirrored. A flank whose control stops younger than its conjugate's borrows the
+conjugate's older traces, their spacing scaled by the ratio of the two flanks' widths from the ridge to
+the flank's oldest control (the mean asymmetry of their common history): those cells are flagged
+extrapolated, count the age beyond the flank's oldest control as extrapolated span ``x`` below, and get no
+full rate or asymmetry (there is no measured conjugate pair). The same pair gives the half-rate (their perpendicular great-circle
 separation over their age difference) and the spreading azimuth (normal to the traces, toward older).
 
 Uncertainty (1 sigma, Myr)::
@@ -24,7 +28,8 @@ Uncertainty (1 sigma, Myr)::
     sigma_age^2 = ((1-f)^2 sigma_a^2 + f^2 sigma_b^2) / r^2  +  (p age)^2  +  (e x)^2
 
 with r the local half-rate, p the timescale's relative uncertainty (``timescale_sigma_percent``), x
-the extrapolated span (Myr), g = :data:`GROWTH_PER_KM` and e = :data:`EXTRAPOLATION_FRACTION` (agegrid's
+the extrapolated span (Myr: beyond the outermost trace, plus the age beyond the flank's own control
+where its traces are borrowed), g = :data:`GROWTH_PER_KM` and e = :data:`EXTRAPOLATION_FRACTION` (agegrid's
 stated choices, not published values).
 """
 from __future__ import annotations
@@ -121,6 +126,9 @@ class CompartmentModel:
     sigma: np.ndarray
     ages: np.ndarray
     bounds: np.ndarray
+    #: Per trace, NaN for a trace drawn through control; for a trace carried over from the conjugate flank
+    #: (:func:`_conjugate_fill`), the age of its flank's oldest controlled trace.
+    support: np.ndarray = None
 
     @property
     def ncol(self) -> int:
@@ -293,7 +301,7 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
             used[np.flatnonzero(ridge)[~keep]] = False
     if used.any():
         rv, rd = _trace(col[used], v[used], ncol, NO_TRACE, km_per_col)
-        ridge_trace = (0, 0.0, 0, rv, rd, _median(sigma[used]))
+        ridge_trace = (0, 0.0, 0, rv, rd, _median(sigma[used]), np.nan)
         cols = np.arange(ncol)
         side = np.sign(v - np.interp(col, cols, rv))
         flanks = (-1, 1)
@@ -329,8 +337,11 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
                     dropped.append({"compartment": int(label), "boundary": int(b), "age_ma": t, "flank": flank,
                                     "points": int(sel.sum()), "implied_half_rate_mm_yr": float(rate)})
                     continue
-            traces.append((flank, t, int(b), V, D, _median(sigma[sel])))
+            traces.append((flank, t, int(b), V, D, _median(sigma[sel]), np.nan))
             previous = traces[-1]
+    if ridge_trace is not None:
+        by_flank = {f: [tr for tr in traces if tr[0] == f] for f in (-1, 1)}
+        traces += [tr for f in (-1, 1) for tr in _conjugate_fill(ridge_trace, by_flank[f], by_flank[-f], f)]
     if ridge_trace is None:
         ordered = traces if flanks[0] > 0 else traces[::-1]
     else:
@@ -348,7 +359,43 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
     return CompartmentModel(
         label=int(label), frame=frame, u0=float(u0), du=float(du), V=V, D=np.array([tr[4] for tr in ordered]),
         sigma=np.array([tr[5] for tr in ordered]), ages=np.array([tr[1] for tr in ordered]),
-        bounds=np.array([tr[2] for tr in ordered], dtype=np.int32))
+        bounds=np.array([tr[2] for tr in ordered], dtype=np.int32), support=np.array([tr[6] for tr in ordered]))
+
+
+def _position_at(traces: list, age: float) -> np.ndarray:
+    """Across-strike position per column at an age, linear in age between a flank's traces (ridge first)."""
+    ages = np.array([tr[1] for tr in traces])
+    k = int(np.clip(np.searchsorted(ages, age), 1, len(ages) - 1))
+    w = (age - ages[k - 1]) / max(ages[k] - ages[k - 1], 1e-9)
+    return traces[k - 1][3] + w * (traces[k][3] - traces[k - 1][3])
+
+
+def _conjugate_fill(ridge: tuple, own: list, conjugate: list, flank: int) -> list:
+    """Traces for a flank whose control stops younger than its conjugate's: the conjugate's isochrons
+    carried over, their spacing scaled by the ratio of the two flanks' widths from the ridge to the
+    flank's oldest control (the mean asymmetry of spreading over the common history; a window of recent
+    stages would extrapolate a transient asymmetry).
+
+    Returns the new traces, marked with the age of ``own``'s oldest controlled trace (its support); cells
+    they date are flagged as extrapolated and their uncertainty grows with the age beyond that support.
+    """
+    if not own or not conjugate or conjugate[-1][1] <= own[-1][1]:
+        return []
+    conj_path = [ridge] + conjugate
+    last = own[-1][1]
+    own_span = np.abs(own[-1][3] - ridge[3])
+    conj_span = np.abs(_position_at(conj_path, last) - ridge[3])
+    ok = conj_span > 0
+    ratio = float(np.clip(np.median(own_span[ok] / conj_span[ok]), 0.2, 5.0)) if ok.any() else 1.0
+    base = _position_at(conj_path, last)
+    filled = []
+    for tr in conjugate:
+        if tr[1] <= last:
+            continue
+        widen = ratio * np.abs(tr[3] - base)
+        filled.append((flank, tr[1], tr[2], own[-1][3] + flank * widen, tr[4] + widen * sphere.EARTH_RADIUS_KM, tr[5],
+                       last))
+    return filled
 
 
 def _extent_samples(spec, compartments) -> dict[int, np.ndarray]:
@@ -411,6 +458,7 @@ class PackedModel:
     ages: np.ndarray
     bounds: np.ndarray
     sigma: np.ndarray
+    support: np.ndarray
 
     @classmethod
     def pack(cls, model: AgeModel) -> "PackedModel":
@@ -420,7 +468,7 @@ class PackedModel:
         w0, dw = np.zeros(n), np.ones(n)
         ncol, ntrace, voff, toff = (np.zeros(n, np.int64) for _ in range(4))
         ridge = np.full(n, -1, np.int64)
-        V, D, ages, bounds, sigma = [], [], [], [], []
+        V, D, ages, bounds, sigma, support = [], [], [], [], [], []
         v_at, t_at = 0, 0
         for label, m in sorted(model.compartments.items()):
             has[label] = True
@@ -434,6 +482,7 @@ class PackedModel:
             ages.append(m.ages)
             bounds.append(m.bounds)
             sigma.append(m.sigma)
+            support.append(m.support)
             v_at += m.V.size
             t_at += len(m.ages)
 
@@ -441,7 +490,8 @@ class PackedModel:
             return np.concatenate(parts).astype(dtype) if parts else np.zeros(1, dtype)
 
         return cls(has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, join(V, np.float64), join(D, np.float64),
-                   join(ages, np.float64), join(bounds, np.float64), join(sigma, np.float64))
+                   join(ages, np.float64), join(bounds, np.float64), join(sigma, np.float64),
+                   join(support, np.float64))
 
 
 FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FAR], np.float64)
@@ -465,6 +515,7 @@ def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, 
     p = packed
     evaluate(*factors, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
+             p.support,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
              GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, wide, narrow)
     return buffer

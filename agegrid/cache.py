@@ -95,7 +95,7 @@ class BlockCache:
             dist = packed.D[v0:v0 + k * nc].reshape(k, nc)
             for part in (frame, packed.w0[label:label + 1], packed.dw[label:label + 1], packed.ncol[label:label + 1],
                          packed.ridge[label:label + 1], packed.ages[t0:t0 + k], packed.bounds[t0:t0 + k],
-                         packed.sigma[t0:t0 + k], np.ascontiguousarray(table[:, lo:hi]),
+                         packed.sigma[t0:t0 + k], packed.support[t0:t0 + k], np.ascontiguousarray(table[:, lo:hi]),
                          np.ascontiguousarray(dist[:, lo:hi]), np.array([label, lo, hi])):
                 digest.update(np.ascontiguousarray(part).tobytes())
         return digest.hexdigest()
