@@ -18,8 +18,9 @@ conjugate flank is mirrored. A flank whose control stops younger than its conjug
 conjugate's older traces, their spacing scaled by the ratio of the two flanks' widths from the ridge to
 the flank's oldest control (the mean asymmetry of their common history): those cells are flagged
 extrapolated, count the age beyond the flank's oldest control as extrapolated span ``x`` below, and get no
-full rate or asymmetry (there is no measured conjugate pair). The same pair gives the half-rate (their perpendicular great-circle
-separation over their age difference) and the spreading azimuth (normal to the traces, toward older).
+full rate or asymmetry (there is no measured conjugate pair). The same pair gives the half-rate (their
+perpendicular great-circle separation over their age difference) and the spreading azimuth (normal to
+the traces, toward older).
 
 Uncertainty (1 sigma, Myr)::
 
@@ -459,6 +460,7 @@ class PackedModel:
     bounds: np.ndarray
     sigma: np.ndarray
     support: np.ndarray
+    borrows: np.ndarray
 
     @classmethod
     def pack(cls, model: AgeModel) -> "PackedModel":
@@ -468,6 +470,7 @@ class PackedModel:
         w0, dw = np.zeros(n), np.ones(n)
         ncol, ntrace, voff, toff = (np.zeros(n, np.int64) for _ in range(4))
         ridge = np.full(n, -1, np.int64)
+        borrows = np.zeros(n, np.bool_)
         V, D, ages, bounds, sigma, support = [], [], [], [], [], []
         v_at, t_at = 0, 0
         for label, m in sorted(model.compartments.items()):
@@ -483,6 +486,7 @@ class PackedModel:
             bounds.append(m.bounds)
             sigma.append(m.sigma)
             support.append(m.support)
+            borrows[label] = bool(np.isfinite(m.support).any())
             v_at += m.V.size
             t_at += len(m.ages)
 
@@ -491,7 +495,7 @@ class PackedModel:
 
         return cls(has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, join(V, np.float64), join(D, np.float64),
                    join(ages, np.float64), join(bounds, np.float64), join(sigma, np.float64),
-                   join(support, np.float64))
+                   join(support, np.float64), borrows)
 
 
 FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FAR], np.float64)
@@ -515,7 +519,7 @@ def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, 
     p = packed
     evaluate(*factors, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
-             p.support,
+             p.support, p.borrows,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
              GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, wide, narrow)
     return buffer

@@ -42,15 +42,16 @@ def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
 
 @njit(cache=True, nogil=True)
 def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
-             sigma, support, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags, wide,
-             narrow):
+             sigma, support, borrows, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags,
+             wide, narrow):
     """Fill ``wide`` (float64 planes of :data:`WIDE`) and ``narrow`` (float32 planes of :data:`NARROW`)
     for the unit vectors (rs rx, rs ry, rz) of a block of cells (2-D arrays; broadcast views welcome).
 
-    ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far). ``support`` is,
-    per trace, NaN for a trace through control, or for a trace carried over from the conjugate flank the age
-    of its flank's oldest controlled trace: cells dated by such a trace are flagged extrapolated, their
-    uncertainty counts the age beyond that support as extrapolated, and they get no full rate or asymmetry.
+    ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far). ``borrows`` says,
+    per compartment, whether any of its traces is borrowed; ``support`` is, per trace, NaN for a trace
+    through control, or for a trace carried over from the conjugate flank the age of its flank's oldest
+    controlled trace: cells dated by such a trace are flagged extrapolated, their uncertainty counts the
+    age beyond that support as extrapolated, and they get no full rate or asymmetry.
     """
     ny, nx = labels.shape
     nan = np.nan
@@ -138,10 +139,12 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
             if span > max_extrapolation:
                 narrow[FLAG, i, jj] = flags[4]
                 continue
-            sup_a, sup_b = support[to + a], support[to + b]
-            borrowed = sup_a == sup_a or sup_b == sup_b  # a bracket from the conjugate flank (support not NaN)
-            if borrowed:
-                span += max(age - (sup_a if sup_a == sup_a else sup_b), 0.0)
+            borrowed = False
+            if borrows[lab]:
+                sup_a, sup_b = support[to + a], support[to + b]
+                borrowed = sup_a == sup_a or sup_b == sup_b  # a bracket from the conjugate flank (not NaN)
+                if borrowed:
+                    span += max(age - (sup_a if sup_a == sup_a else sup_b), 0.0)
             extrapolated = outside or borrowed
             narrow[FLAG, i, jj] = flags[1] if extrapolated else flags[0]
             wide[AGE, i, jj] = age
@@ -178,7 +181,8 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                                 else:
                                     hi = mid
                         conj_lab, conj_lo = lab, lo
-                        if support[to + lo] != support[to + lo] and support[to + lo + 1] != support[to + lo + 1]:
+                        if not borrows[lab] or (support[to + lo] != support[to + lo]
+                                                and support[to + lo + 1] != support[to + lo + 1]):
                             conj = _pair_rate(V, ages, vo, to, lo, nc, j0, t, dw[lab], w)
                     elif not plus and r < K - 1 and ages[to + K - 1] >= age:  # plus side: ages rise from r
                         if lab == conj_lab and r <= conj_lo < K - 1 and ages[to + conj_lo] <= age < ages[to + conj_lo + 1]:
@@ -192,7 +196,8 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                                 else:
                                     hi = mid
                         conj_lab, conj_lo = lab, lo
-                        if support[to + lo] != support[to + lo] and support[to + lo + 1] != support[to + lo + 1]:
+                        if not borrows[lab] or (support[to + lo] != support[to + lo]
+                                                and support[to + lo + 1] != support[to + lo + 1]):
                             conj = _pair_rate(V, ages, vo, to, lo, nc, j0, t, dw[lab], w)
                 if conj == conj and rate == rate and not borrowed:
                     narrow[FULL_RATE, i, jj] = rate + conj
