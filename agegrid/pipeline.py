@@ -1,7 +1,8 @@
 """The build: stages wired from inputs to outputs, timed, logged, written atomically.
 
-Every stage is a function of its inputs; the layers stay lazy (dask) until the NetCDF is written,
-and the GeoTIFFs and statistics are read back from that file, so nothing is computed twice.
+Every stage is a function of its inputs; the layers stay lazy (dask) until one streaming pass computes
+each block once and hands it to the NetCDF, the GeoTIFF sources and the samples the tables and the report
+read, so nothing is computed twice.
 """
 from __future__ import annotations
 
@@ -350,6 +351,8 @@ def scheduler(address: str | None = None, workers: int | None = None):
             if cluster is not None:
                 cluster.close()
     else:
+        import dask.threaded
+
         # the threaded scheduler itself rather than its name: naming it makes dask import distributed to
         # look for a client
         with dask.config.set(scheduler=dask.threaded.get):

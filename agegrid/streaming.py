@@ -34,7 +34,7 @@ def windows(chunks: tuple[tuple[int, ...], tuple[int, ...]], bytes_per_cell: int
         yield i, list(range(start, len(cols)))
 
 
-def stream(ds: xr.Dataset, names: list[str], spec, sinks: list[Sink], window_mb: float = WINDOW_MB) -> None:
+def stream(ds: xr.Dataset, names: list[str], sinks: list[Sink], window_mb: float = WINDOW_MB) -> None:
     """Compute the lazy 2-D variables ``names`` of ``ds`` window by window and feed every block to ``sinks``.
 
     Blocks are handed over as dask computes them (no window-sized copies); layers sharing a computation

@@ -221,7 +221,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
         enc, lazy = create_netcdf(ds, staged, spec)
         writer = ChunkWriter(staged, spec, enc, lazy)
         try:
-            stream(ds, lazy, spec, [writer.write, *extra_sinks])
+            stream(ds, lazy, [writer.write, *extra_sinks])
         finally:
             writer.close()
     except BaseException:
