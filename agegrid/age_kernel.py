@@ -167,11 +167,12 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                 plus = a >= r and not mirror
                 narrow[FLANK, i, jj] = 1.0 if plus else -1.0
                 conj = np.nan
+                pair = -1
                 if not mirror:
                     # the other side's ages are monotone away from the ridge: binary search for the pair
                     if plus and r > 0 and ages[to] >= age:  # minus side: ages fall from index 0 to r
                         if lab == conj_lab and 0 <= conj_lo < r and ages[to + conj_lo] >= age > ages[to + conj_lo + 1]:
-                            lo = conj_lo  # the neighbouring cell's pair still brackets this age
+                            pair = conj_lo  # the neighbouring cell's pair still brackets this age
                         else:
                             lo, hi = 0, r
                             while hi - lo > 1:
@@ -180,13 +181,10 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                                     lo = mid
                                 else:
                                     hi = mid
-                        conj_lab, conj_lo = lab, lo
-                        if not borrows[lab] or (support[to + lo] != support[to + lo]
-                                                and support[to + lo + 1] != support[to + lo + 1]):
-                            conj = _pair_rate(V, ages, vo, to, lo, nc, j0, t, dw[lab], w)
+                            pair = lo
                     elif not plus and r < K - 1 and ages[to + K - 1] >= age:  # plus side: ages rise from r
                         if lab == conj_lab and r <= conj_lo < K - 1 and ages[to + conj_lo] <= age < ages[to + conj_lo + 1]:
-                            lo = conj_lo
+                            pair = conj_lo
                         else:
                             lo, hi = r, K - 1
                             while hi - lo > 1:
@@ -195,10 +193,12 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                                     lo = mid
                                 else:
                                     hi = mid
-                        conj_lab, conj_lo = lab, lo
-                        if not borrows[lab] or (support[to + lo] != support[to + lo]
-                                                and support[to + lo + 1] != support[to + lo + 1]):
-                            conj = _pair_rate(V, ages, vo, to, lo, nc, j0, t, dw[lab], w)
+                            pair = lo
+                if pair >= 0:
+                    conj_lab, conj_lo = lab, pair
+                    if not borrows[lab] or (support[to + pair] != support[to + pair]
+                                            and support[to + pair + 1] != support[to + pair + 1]):
+                        conj = _pair_rate(V, ages, vo, to, pair, nc, j0, t, dw[lab], w)
                 if conj == conj and rate == rate and not borrowed:
                     narrow[FULL_RATE, i, jj] = rate + conj
                     narrow[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
