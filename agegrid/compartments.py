@@ -221,7 +221,8 @@ def _path_cells(shape, path: np.ndarray, stop_cells: np.ndarray | None = None,
 
 
 def _domain_shapes(spec, polygon) -> list | None:
-    """The domain polygon(s) in the grid's coordinates, for rasterising block by block; None: everywhere."""
+    """The domain polygon(s) in the grid's coordinates as GeoJSON-like mappings, for rasterising block by
+    block; None: everywhere."""
     if polygon is None:
         return None
     from shapely import affinity, ops
@@ -234,7 +235,7 @@ def _domain_shapes(spec, polygon) -> list | None:
         else:
             dense = shapely.segmentize(poly, max_segment_length=0.1)
             dense = ops.transform(lambda x, y, z=None: spec.project(np.asarray(x), np.asarray(y)), dense)
-        geoms.append(dense)
+        geoms.append(shapely.geometry.mapping(dense))  # as GeoJSON once, not again for every block row
     return geoms
 
 
