@@ -180,3 +180,25 @@ def test_no_barriers_given_uses_implied_fracture_zones(tmp_path):
     s = scores(implied.error)
     assert s["p95"] <= 0.3 and s["rms"] <= 0.4, s
     assert s["rms"] < 0.5 * scores(none.error)["rms"]
+
+
+def test_compiled_trace_helpers_match_numpy():
+    # the compiled helpers against numpy's own: binned means (unique + bincount), end slopes (polyfit),
+    # medians
+    from agegrid.age import _binned, _end_fit, _median
+
+    rng = np.random.default_rng(7)
+    col = rng.uniform(0, 60, 400)
+    v = 0.01 * col + rng.normal(0, 1e-4, 400)
+    xp, vp = _binned(col, v)
+    key = np.rint(col)
+    _, inverse = np.unique(key, return_inverse=True)
+    count = np.bincount(inverse)
+    assert np.allclose(xp, np.bincount(inverse, col) / count) and np.allclose(vp, np.bincount(inverse, v) / count)
+    for end in (-1, 1):
+        span = max(3.0, 0.1 * (xp[-1] - xp[0]))
+        sel = (xp >= xp[-1] - span) if end > 0 else (xp <= xp[0] + span)
+        slope, anchor = _end_fit(xp, vp, end)
+        assert slope == pytest.approx(np.polyfit(xp[sel], vp[sel], 1)[0], rel=1e-9)
+        assert anchor == (vp[-1] if end > 0 else vp[0])
+    assert _median(v) == np.median(v)
