@@ -66,13 +66,17 @@ class CogWriter:
 
     def finish(self, threads: int | None = None) -> dict[Path, Path]:
         """Close the sources and make the COGs; returns {target: staged COG}."""
+        def finish_one(name: str) -> Path:
+            self._close_with_overviews(name)
+            return self._cog(name)
+
+        # widest types first, so the threads end together
+        names = sorted(self.targets, key=lambda n: -np.dtype(self.open[n].dtypes[0]).itemsize)
         with ThreadPoolExecutor(threads or os.cpu_count() or 1) as pool:
-            list(pool.map(self._close_with_overviews, list(self.open)))
+            staged = dict(zip([self.targets[n] for n in names], pool.map(finish_one, names)))
         self.open.clear()
-        with ThreadPoolExecutor(threads or os.cpu_count() or 1) as pool:
-            staged = dict(zip(self.targets.values(), pool.map(self._cog, self.targets)))
         self.close()
-        return staged
+        return {target: staged[target] for target in self.targets.values()}
 
     def _close_with_overviews(self, name: str) -> None:
         """Add the overviews to a source (the COG driver copies them) and close it.
