@@ -396,7 +396,10 @@ class _BlockLabelling:
                 self.offsets[block.key], self.counts[block.key] = total, block.count
                 self.barrier_in_domain[block.barriers] = block.barriers_in_domain
                 first_cells.append(block.first_cells)
-                edges = {side: np.where(e > 0, e + total, 0) for side, e in block.edges.items()}
+                def lift(local, offset=total):  # local labels to provisional ids (0 stays 0)
+                    return np.where(local > 0, local + offset, 0)
+
+                edges = {side: lift(e) for side, e in block.edges.items()}
                 if rows.start > 0:
                     pairs.append(np.stack([bottom[cols], edges["top"]], -1))
                 if right is not None:
@@ -406,8 +409,8 @@ class _BlockLabelling:
                 if cols.start == 0:
                     west[rows] = edges["left"]
                 east[rows] = edges["right"]
-                self._near_ids[block.near] = np.where(block.near_local > 0, block.near_local + total, 0)
-                self._sample_ids[np.ix_(*block.sampled)] = np.where(block.sample_local > 0, block.sample_local + total, 0)
+                self._near_ids[block.near] = lift(block.near_local)
+                self._sample_ids[np.ix_(*block.sampled)] = lift(block.sample_local)
                 total += block.count
         if spec.is_global:
             pairs.append(np.stack([west, east], -1))

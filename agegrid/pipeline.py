@@ -16,7 +16,6 @@ import time
 from datetime import datetime, timezone
 from pathlib import Path
 
-import dask
 import dask.array as da
 import numpy as np
 import xarray as xr
