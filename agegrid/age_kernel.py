@@ -22,7 +22,7 @@ AGE, FRACTION = range(len(WIDE))
 (SIGMA, FLAG, YOUNG, OLD, RATE, AZIMUTH, COMPARTMENT, FLANK, FULL_RATE, ASYMMETRY) = range(len(NARROW))
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
     """Half-rate (km/Myr) between traces i0 and i0 + 1 of the compartment at offsets (vo, to), at a column."""
     ia = vo + i0 * nc + j0
@@ -40,7 +40,7 @@ def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
     return gap * EARTH_RADIUS_KM / (dt * math.sqrt(cos2 * (1.0 + tilt * tilt)))
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, error_model="numpy")
 def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
              sigma, support, borrows, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags,
              wide, narrow):
