@@ -189,6 +189,8 @@ class Output(Section):
     directory: Path = Path("out")
     formats: list[Literal["netcdf", "geotiff", "zarr"]] = ["netcdf", "geotiff"]
     report: bool = True
+    cog_compression: Literal["deflate", "zstd", "none"] = "deflate"
+    cog_predictor: bool = False
 
 
 class BuildConfig(Section):

@@ -288,7 +288,8 @@ def _cog_writer(config, ds: xr.Dataset, spec, attrs: dict, out_dir: Path) -> Cog
     enc = encoding(ds, spec)
     names = [n for n in ds.data_vars if n not in NOT_IN_GEOTIFF and n != "crs"]
     return CogWriter(spec, {n: out_dir / f"{config.name}_{n}.tif" for n in names}, attrs,
-                     {n: ds[n].dtype for n in names}, {n: enc[n]["_FillValue"] for n in names})
+                     {n: ds[n].dtype for n in names}, {n: enc[n]["_FillValue"] for n in names},
+                     config.output.cog_compression, config.output.cog_predictor)
 
 
 def _describe_outputs(staged: dict[Path, Path], threads: int = 4) -> list[dict]:

@@ -134,6 +134,8 @@ def main(argv=None) -> int:
     parser.add_argument("--builds", type=int, default=3)
     parser.add_argument("--large", action="store_true", help="add a grid of 16x the cells of the last size")
     parser.add_argument("--magnetic", action="store_true", help="include the magnetic model in the builds")
+    parser.add_argument("--cog-compression", choices=("deflate", "zstd", "none"), default="deflate",
+                        help="the builds' [output] cog_compression")
     args = parser.parse_args(argv)
     spacings = [float(s) for s in args.sizes.split(",")]
     if args.large:
@@ -159,13 +161,14 @@ def main(argv=None) -> int:
             if args.magnetic:
                 extra += "[magnetic]\nfield_inclination = 30.0\nfield_declination = 5.0\n"
             basin_build(folder, basin, records=records, spacing=spacing, chunk=512, formats=("netcdf", "geotiff"),
-                        extra=extra)
+                        extra=f'cog_compression = "{args.cog_compression}"\n' + extra)
             text = (folder / "build.toml").read_text().replace('[grid]', 'bathymetry = "bathymetry.nc"\n[grid]')
             (folder / "build.toml").write_text(text)
             write_bathymetry(folder / "bathymetry.nc", basin, spec)
             build = whole_build(folder, args.builds)
             row = {
                 "spacing_deg": spacing, "cells": spec.size, "picks": len(records),
+                "cog_compression": args.cog_compression,
                 "age_stage_s": round(t_age, 3), "age_stage_runs_s": [round(t, 3) for t in all_age],
                 "griddata_s": round(t_gen, 3), "griddata_runs_s": [round(t, 3) for t in all_gen],
                 "age_over_griddata": round(t_age / t_gen, 2),
