@@ -37,6 +37,7 @@ from agegrid.age import Settings, age_layers, build_age_model  # noqa: E402
 from agegrid.compartments import build_compartments  # noqa: E402
 from agegrid.control import build_control  # noqa: E402
 from agegrid.grid import GridSpec  # noqa: E402
+from agegrid.io.geotiff import CODECS  # noqa: E402
 from agegrid.io.points import read_picks  # noqa: E402
 from agegrid.io.vectors import LineFeature  # noqa: E402
 from agegrid.synthetic import SyntheticBasin  # noqa: E402
@@ -134,7 +135,7 @@ def main(argv=None) -> int:
     parser.add_argument("--builds", type=int, default=3)
     parser.add_argument("--large", action="store_true", help="add a grid of 16x the cells of the last size")
     parser.add_argument("--magnetic", action="store_true", help="include the magnetic model in the builds")
-    parser.add_argument("--cog-compression", choices=("deflate", "zstd", "none"), default="deflate",
+    parser.add_argument("--cog-compression", choices=tuple(CODECS), default="deflate",
                         help="the builds' [output] cog_compression")
     args = parser.parse_args(argv)
     spacings = [float(s) for s in args.sizes.split(",")]

@@ -161,3 +161,12 @@ def test_build_writes_cogs_with_the_chosen_codec(tmp_path):
     text = config.read_text().replace('"zstd"', '"lz4"')
     config.write_text(text)
     assert main(["build", str(config), "--quiet"]) == 2
+
+
+def test_build_file_offers_every_cog_codec():
+    from typing import get_args
+
+    from agegrid.config import Output
+    from agegrid.io.geotiff import CODECS
+
+    assert set(get_args(Output.model_fields["cog_compression"].annotation)) == set(CODECS)
