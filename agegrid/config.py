@@ -192,6 +192,12 @@ class Output(Section):
     cog_compression: Literal["deflate", "zstd", "none"] = "deflate"
     cog_predictor: bool = False
 
+    @model_validator(mode="after")
+    def _predictor_needs_a_codec(self):
+        if self.cog_predictor and self.cog_compression == "none":
+            raise ValueError("cog_predictor only works with a codec: set cog_compression to 'deflate' or 'zstd'")
+        return self
+
 
 class BuildConfig(Section):
     """A whole build file, with every path made absolute."""

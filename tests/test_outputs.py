@@ -158,9 +158,11 @@ def test_build_writes_cogs_with_the_chosen_codec(tmp_path):
         assert src.tags(ns="IMAGE_STRUCTURE")["COMPRESSION"] == "ZSTD"
         assert src.tags(ns="IMAGE_STRUCTURE")["PREDICTOR"] == "3"
         assert np.array_equal(src.read(1), ds["half_rate"].values, equal_nan=True)
-    text = config.read_text().replace('"zstd"', '"lz4"')
-    config.write_text(text)
+    text = config.read_text()
+    config.write_text(text.replace('"zstd"', '"lz4"'))
     assert main(["build", str(config), "--quiet"]) == 2
+    config.write_text(text.replace('"zstd"', '"none"'))
+    assert main(["validate", str(config)]) == 2
 
 
 def test_build_file_offers_every_cog_codec():

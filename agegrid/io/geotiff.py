@@ -37,7 +37,7 @@ class CogWriter:
     def __init__(self, spec, targets: dict[str, Path], attrs: dict, dtypes: dict, fills: dict,
                  compression: str = "deflate", predictor: bool = False):
         self.targets, self.attrs, self.fills, self.dtypes = targets, attrs, fills, dtypes
-        self.codec, self.predictor = CODECS[compression], predictor and compression != "none"
+        self.codec, self.predictor = CODECS[compression], predictor
         self.sources: dict[str, Path] = {}
         self.open: dict = {}
         crs = rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
