@@ -133,6 +133,8 @@ def test_cog_compression_choices_read_back_by_gdal(tmp_path, compression, predic
             writer.write("age", r0, c0, age[r0:r0 + 128, c0:c0 + 128])
             writer.write("age_flag", r0, c0, flag[r0:r0 + 128, c0:c0 + 128])
     staged = writer.finish()
+    # Predictor codes (from memory): 2 horizontal differencing (TIFF 6.0, tag 317), 3 floating point (Adobe
+    # Photoshop TIFF Technical Note 3); GDAL reports them in the IMAGE_STRUCTURE metadata domain
     for name, expect, predictor_code in (("age", age, "3"), ("age_flag", flag, "2")):
         path = staged[targets[name]]
         valid, errors, _ = cog_validate(str(path), quiet=True)
@@ -159,6 +161,11 @@ def test_build_writes_cogs_with_the_chosen_codec(tmp_path):
         assert src.tags(ns="IMAGE_STRUCTURE")["PREDICTOR"] == "3"
         assert np.array_equal(src.read(1), ds["half_rate"].values, equal_nan=True)
     text = config.read_text()
+    config.write_text(text.replace('"zstd"', '"deflate"').replace("cog_predictor = true", "cog_predictor = false"))
+    assert main(["build", str(config), "--quiet"]) == 0  # no --force: a changed codec alone rewrites the COGs
+    with rasterio.open(out / "basin_half_rate.tif") as src:
+        assert src.tags(ns="IMAGE_STRUCTURE")["COMPRESSION"] == "DEFLATE"
+        assert "PREDICTOR" not in src.tags(ns="IMAGE_STRUCTURE")
     config.write_text(text.replace('"zstd"', '"lz4"'))
     assert main(["build", str(config), "--quiet"]) == 2
     config.write_text(text.replace('"zstd"', '"none"'))
