@@ -1,132 +1,287 @@
-"""Cloud-Optimized GeoTIFFs, one per output layer, made by GDAL from sources streamed during the build.
+"""Cloud-Optimized GeoTIFFs, one per output layer, written tile by tile as the layers stream past.
 
-While the layers are computed window by window, each layer's blocks go into an uncompressed tiled
-GeoTIFF beside the target (:class:`CogWriter`), with its band description, units and attributes set
-(GDAL refuses to edit a finished COG). When the sources are complete their overviews are built in place
-(uncompressed, so cheaply) and GDAL's COG driver copies every source to a COG (tiles, those overviews,
-the chosen compression), several layers at a time, with its cache capped, so memory stays
-bounded whatever the grid size; the sources are removed.
+Every block a layer hands over is cut into 256 x 256 tiles. A finished tile is encoded on a worker
+thread (the TIFF predictor if asked, then the codec, both releasing the GIL) and appended to its level's
+spill file beside the target, and its 2 x 2 reduction fills a quarter of a tile of the next overview
+level: the mean of the valid cells for real values, the top-left cell for codes and counts. So the
+overviews are made in the same pass, and memory holds only unfinished tiles. When the grid is done,
+each COG is assembled from its spill files (:func:`agegrid.io.tiff.write_pyramid`) with the CRS,
+transform, nodata and band metadata tags GDAL writes for such a layer.
 """
 from __future__ import annotations
 
 import contextlib
 import os
+from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
+from typing import Callable, NamedTuple
 
+import numba
 import numpy as np
 import rasterio
-import rasterio.shutil
-from rasterio.enums import Resampling
-from rasterio.windows import Window
+from rasterio.io import MemoryFile
 
+from agegrid.io import tiff
 from agegrid.io.atomic import staging_path
 
 BLOCK = 256
-CACHE_MB = 256
-#: GDAL's codec and level for each ``[output] cog_compression``: DEFLATE at level 1 makes files within 1 % of
-#: the default level 6's size, 1.6x faster; ZSTD at level 1 makes files within 1 % of
-#: DEFLATE's, 2.5x faster (measured on a build's 19 layers, see the README).
-CODECS = {"deflate": {"COMPRESS": "DEFLATE", "LEVEL": 1}, "zstd": {"COMPRESS": "ZSTD", "LEVEL": 1},
-          "none": {"COMPRESS": "NONE"}}
+
+
+class Codec(NamedTuple):
+    """A TIFF compression: its Compression tag value and the function encoding one tile (a C-contiguous array)."""
+
+    code: int
+    encode: Callable[[np.ndarray], bytes]
+
+
+def _deflate(tile: np.ndarray) -> bytes:
+    from isal import isal_zlib
+
+    return isal_zlib.compress(memoryview(tile).cast("B"), 1)
+
+
+def _zstd(tile: np.ndarray) -> bytes:
+    from numcodecs import Zstd
+
+    return Zstd(level=1).encode(tile)
+
+
+#: Each ``[output] cog_compression``: the Compression tag value (from memory: 1 none and 8 Deflate from
+#: TIFF 6.0 and its Deflate supplement, 50000 zstd as libtiff registers it) and the encoder. Deflate is
+#: ISA-L's zlib stream at level 1, zstd at level 1 (sizes and times measured in the README).
+CODECS = {"deflate": Codec(8, _deflate), "zstd": Codec(50000, _zstd), "none": Codec(1, np.ndarray.tobytes)}
 
 
 class CogWriter:
-    """Streams layers into GeoTIFF sources, then turns each into a COG staged beside its target."""
+    """Streams layers into tiled, compressed pyramids and assembles each into a COG staged beside its target."""
 
     def __init__(self, spec, targets: dict[str, Path], attrs: dict, dtypes: dict, fills: dict,
-                 compression: str = "deflate", predictor: bool = False):
-        self.targets, self.attrs, self.fills, self.dtypes = targets, attrs, fills, dtypes
+                 compression: str = "deflate", predictor: bool = False, threads: int | None = None):
+        self.targets = targets
         self.codec, self.predictor = CODECS[compression], predictor
-        self.sources: dict[str, Path] = {}
-        self.open: dict = {}
-        crs = rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
-        ny, nx = spec.shape
-        for name, target in targets.items():
-            source = staging_path(target.with_suffix(".source.tif"))
-            self.sources[name] = source
-            with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
-                band = rasterio.open(source, "w", driver="GTiff", width=nx, height=ny, count=1,
-                                     dtype=np.dtype(dtypes[name]).name, crs=crs, transform=spec.transform,
-                                     nodata=fills[name], tiled=True, blockxsize=BLOCK, blockysize=BLOCK,
-                                     BIGTIFF="IF_SAFER")
-            layer_attrs = attrs[name]
-            band.set_band_description(1, str(layer_attrs.get("long_name", name)))
-            band.update_tags(1, **{k: str(v) for k, v in layer_attrs.items()})
-            if layer_attrs.get("units"):
-                band.set_band_unit(1, str(layer_attrs["units"]))
-            self.open[name] = band
+        self.threads = threads or os.cpu_count() or 1
+        self.pool = ThreadPoolExecutor(self.threads)
+        self.pending: deque = deque()
+        self.layers: dict[str, _Pyramid] = {}
+        try:
+            for name, target in targets.items():
+                self.layers[name] = _Pyramid(spec, name, target, np.dtype(dtypes[name]), fills[name], attrs[name],
+                                             averaged=not _is_code(attrs[name]), codec=self.codec,
+                                             predictor=predictor)
+        except BaseException:
+            self.close()
+            raise
 
     def write(self, name: str, r0: int, c0: int, block: np.ndarray) -> None:
-        """Write a block of layer ``name`` whose top-left cell is (r0, c0)."""
-        band = self.open.get(name)
-        if band is None:
+        """Take a block of layer ``name`` whose top-left cell is (r0, c0)."""
+        layer = self.layers.get(name)
+        if layer is None:
             return
-        fill = self.fills[name]
-        if block.dtype.kind == "f" and np.dtype(band.dtypes[0]).kind in "iu":
-            block = np.where(np.isnan(block), fill, block)
-        with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
-            band.write(block.astype(band.dtypes[0], copy=False), 1,
-                       window=Window(c0, r0, block.shape[1], block.shape[0]))
+        if block.dtype.kind == "f" and layer.dtype.kind in "iu":
+            block = np.where(np.isnan(block), layer.fill, block)
+        for job in layer.place(0, r0, c0, block.astype(layer.dtype, copy=False)):
+            self._submit(layer, *job)
+        while len(self.pending) > 4 * self.threads:
+            self._collect_first()
 
-    def finish(self, threads: int | None = None) -> dict[Path, Path]:
-        """Close the sources and make the COGs; returns {target: staged COG}."""
-        def finish_one(name: str) -> Path:
-            self._close_with_overviews(name)
-            return self._cog(name)
+    def _submit(self, layer: "_Pyramid", level: int, ti: int, tj: int, tile: np.ndarray) -> None:
+        reduce = level + 1 < len(layer.shapes)
+        self.pending.append((layer, level, ti, tj, self.pool.submit(layer.encode, tile, reduce)))
 
-        # widest types first, so the threads end together
-        names = sorted(self.targets, key=lambda n: -np.dtype(self.open[n].dtypes[0]).itemsize)
-        with ThreadPoolExecutor(threads or os.cpu_count() or 1) as pool:
-            staged = dict(zip([self.targets[n] for n in names], pool.map(finish_one, names)))
-        self.open.clear()
-        self.close()
-        return {target: staged[target] for target in self.targets.values()}
+    def _collect_first(self) -> None:
+        layer, level, ti, tj, future = self.pending.popleft()
+        data, reduced = future.result()
+        layer.store(level, ti, tj, data)
+        if reduced is not None:
+            h, w = layer.tile_extent(level, ti, tj)
+            part = reduced[:-(-h // 2), :-(-w // 2)]
+            for job in layer.place(level + 1, ti * BLOCK // 2, tj * BLOCK // 2, part):
+                self._submit(layer, *job)
 
-    def _close_with_overviews(self, name: str) -> None:
-        """Add the overviews to a source (the COG driver copies them) and close it.
-
-        GDAL building them in the uncompressed source is about four times cheaper than the COG
-        driver building them from it; the levels are those of the driver's own choice (halving until
-        the overview fits one block).
-        """
-        band = self.open[name]
-        factors, factor = [], 2
-        while max(band.shape) / (factor // 2) > BLOCK:
-            factors.append(factor)
-            factor *= 2
-        with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
-            if factors:
-                band.build_overviews(factors, Resampling.nearest if self._integer(name) else Resampling.average)
-            band.close()
-
-    def _integer(self, name: str) -> bool:
-        """Whether a layer holds codes or counts, whose overviews take the nearest value, not the average."""
-        return str(self.attrs[name].get("units", "")) == "1" or "flag_values" in self.attrs[name]
-
-    def _cog(self, name: str) -> Path:
-        target, source = self.targets[name], self.sources[name]
-        staged = staging_path(target)
-        options = dict(self.codec)
-        if self.predictor:  # TIFF's floating-point predictor (3) for reals, horizontal differencing (2) for integers
-            options["PREDICTOR"] = 3 if np.dtype(self.dtypes[name]).kind == "f" else 2
+    def finish(self) -> dict[Path, Path]:
+        """Encode what is left and assemble the COGs; returns {target: staged COG}."""
+        while self.pending:
+            self._collect_first()
+        staged = {}
         try:
-            with rasterio.Env(GDAL_CACHEMAX=CACHE_MB):
-                rasterio.shutil.copy(source, staged, driver="COG", BLOCKSIZE=BLOCK, OVERVIEWS="FORCE_USE_EXISTING",
-                                     BIGTIFF="IF_SAFER", NUM_THREADS=1, **options)
+            for layer in self.layers.values():
+                staged[layer.target] = staging_path(layer.target)
+                layer.assemble(staged[layer.target])
         except BaseException:
-            with contextlib.suppress(FileNotFoundError):
-                staged.unlink()
+            for path in staged.values():
+                path.unlink(missing_ok=True)
             raise
         finally:
-            source.unlink(missing_ok=True)
+            self.close()
         return staged
 
     def close(self) -> None:
-        """Close and remove whatever sources are left (also after a failure)."""
-        for band in self.open.values():
-            with contextlib.suppress(Exception):
-                band.close()
-        self.open.clear()
-        for source in self.sources.values():
-            source.unlink(missing_ok=True)
+        """Stop the encoders and remove the spill files (also after a failure)."""
+        for *_, future in self.pending:
+            future.cancel()
+        self.pending.clear()
+        self.pool.shutdown(wait=True)
+        for layer in self.layers.values():
+            layer.discard()
+
+
+def _is_code(attrs: dict) -> bool:
+    """Whether a layer holds codes or counts, whose overviews take a cell's value, not a mean."""
+    return str(attrs.get("units", "")) == "1" or "flag_values" in attrs
+
+
+class _Pyramid:
+    """One layer's levels: unfinished tiles, a spill file of encoded tiles per level, and the TIFF tags."""
+
+    def __init__(self, spec, name: str, target: Path, dtype: np.dtype, fill, attrs: dict, averaged: bool, codec: Codec,
+                 predictor: bool):
+        self.target, self.dtype, self.fill = target, dtype.newbyteorder("<"), fill
+        self.averaged, self.codec, self.predictor = averaged, codec, predictor
+        self.shapes = [tuple(spec.shape)]
+        while max(self.shapes[-1]) > BLOCK:  # halve until the overview fits one tile
+            self.shapes.append(tuple(-(-n // 2) for n in self.shapes[-1]))
+        self.open: list[dict] = [{} for _ in self.shapes]
+        self.spills, self.files, self.offsets, self.counts = [], [], [], []
+        for shape in self.shapes:
+            tiles = -(-shape[0] // BLOCK) * -(-shape[1] // BLOCK)
+            self.offsets.append(np.full(tiles, -1, dtype=np.int64))
+            self.counts.append(np.zeros(tiles, dtype=np.int64))
+            self.spills.append(staging_path(target.with_suffix(f".level{len(self.spills)}.tiles")))
+            self.files.append(open(self.spills[-1], "w+b"))
+        self.georeferencing = _georeferencing_tags(spec, self.dtype, fill, name, attrs)
+
+    def tile_extent(self, level: int, ti: int, tj: int) -> tuple[int, int]:
+        """Rows and columns of tile (ti, tj) of ``level`` inside the image."""
+        ny, nx = self.shapes[level]
+        return min(BLOCK, ny - ti * BLOCK), min(BLOCK, nx - tj * BLOCK)
+
+    def place(self, level: int, r0: int, c0: int, values: np.ndarray):
+        """Copy ``values`` (top-left cell at (r0, c0) of ``level``) into its tiles; yields the finished ones
+        as (level, ti, tj, tile)."""
+        h, w = values.shape
+        for ti in range(r0 // BLOCK, (r0 + h - 1) // BLOCK + 1):
+            for tj in range(c0 // BLOCK, (c0 + w - 1) // BLOCK + 1):
+                top, left = ti * BLOCK, tj * BLOCK
+                rs = slice(max(r0, top), min(r0 + h, top + BLOCK))
+                cs = slice(max(c0, left), min(c0 + w, left + BLOCK))
+                if rs.stop - rs.start == cs.stop - cs.start == BLOCK:  # a whole tile: no copy here
+                    yield level, ti, tj, values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
+                    continue
+                entry = self.open[level].get((ti, tj))
+                if entry is None:
+                    entry = self.open[level][(ti, tj)] = [np.full((BLOCK, BLOCK), self.fill, dtype=self.dtype), 0]
+                entry[0][rs.start - top:rs.stop - top, cs.start - left:cs.stop - left] = \
+                    values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
+                entry[1] += (rs.stop - rs.start) * (cs.stop - cs.start)
+                th, tw = self.tile_extent(level, ti, tj)
+                if entry[1] >= th * tw:
+                    del self.open[level][(ti, tj)]
+                    yield level, ti, tj, entry[0]
+
+    def encode(self, tile: np.ndarray, reduce: bool) -> tuple[bytes, np.ndarray | None]:
+        """A tile's encoded bytes and, if asked, its 2 x 2 reduction for the next level."""
+        tile = np.ascontiguousarray(tile)
+        data = _predicted(tile) if self.predictor else tile
+        return self.codec.encode(data), (self._reduced(tile) if reduce else None)
+
+    def _reduced(self, tile: np.ndarray) -> np.ndarray:
+        if not self.averaged:
+            return tile[::2, ::2].copy()
+        fill = np.nan if self.fill is None else float(self.fill)
+        return _mean_of_valid_2x2(tile, fill)
+
+    def store(self, level: int, ti: int, tj: int, data: bytes) -> None:
+        """Append an encoded tile to its level's spill file."""
+        k = ti * -(-self.shapes[level][1] // BLOCK) + tj
+        self.offsets[level][k] = self.files[level].tell()
+        self.counts[level][k] = len(data)
+        self.files[level].write(data)
+
+    def assemble(self, staged: Path) -> None:
+        """Write the COG to ``staged`` from the spill files."""
+        for level, offsets in enumerate(self.offsets):
+            if (offsets < 0).any():
+                raise RuntimeError(f"{self.target.name}: level {level} has tiles never written")
+            self.files[level].flush()
+        tiff.write_pyramid(staged, [tiff.Level(self._tags(level), self.spills[level], self.offsets[level],
+                                               self.counts[level]) for level in range(len(self.shapes))])
+
+    def _tags(self, level: int) -> dict[int, tiff.Tag]:
+        ny, nx = self.shapes[level]
+        S, L = tiff.SHORT, tiff.LONG
+        tags = {tiff.IMAGE_WIDTH: tiff.Tag.of(L, nx), tiff.IMAGE_LENGTH: tiff.Tag.of(L, ny),
+                tiff.BITS_PER_SAMPLE: tiff.Tag.of(S, 8 * self.dtype.itemsize),
+                tiff.COMPRESSION: tiff.Tag.of(S, self.codec.code), tiff.PHOTOMETRIC: tiff.Tag.of(S, 1),
+                tiff.SAMPLES_PER_PIXEL: tiff.Tag.of(S, 1), tiff.PLANAR_CONFIGURATION: tiff.Tag.of(S, 1),
+                tiff.TILE_WIDTH: tiff.Tag.of(S, BLOCK), tiff.TILE_LENGTH: tiff.Tag.of(S, BLOCK),
+                tiff.SAMPLE_FORMAT: tiff.Tag.of(S, tiff.SAMPLE_FORMATS[self.dtype.kind])}
+        if self.predictor:  # TIFF's floating-point predictor (3) for reals, horizontal differencing (2) for integers
+            tags[tiff.PREDICTOR] = tiff.Tag.of(S, 3 if self.dtype.kind == "f" else 2)
+        if level:
+            tags[tiff.NEW_SUBFILE_TYPE] = tiff.Tag.of(L, 1)  # a reduced-resolution version of the image
+            tags.update({code: self.georeferencing[code] for code in (GDAL_NODATA,) if code in self.georeferencing})
+        else:
+            tags.update(self.georeferencing)
+        return tags
+
+    def discard(self) -> None:
+        """Close and remove the spill files."""
+        for file, path in zip(self.files, self.spills):
+            file.close()
+            path.unlink(missing_ok=True)
+
+
+@numba.njit(cache=True, nogil=True)
+def _mean_of_valid_2x2(tile, fill):
+    """Each 2 x 2 cell group's mean over its valid cells (neither NaN nor ``fill``); ``fill`` where none is."""
+    rows, cols = tile.shape[0] // 2, tile.shape[1] // 2
+    out = np.empty((rows, cols), dtype=tile.dtype)
+    for i in range(rows):
+        for j in range(cols):
+            total, count = 0.0, 0
+            for di in range(2):
+                for dj in range(2):
+                    value = tile[2 * i + di, 2 * j + dj]
+                    if value == value and value != fill:
+                        total += value
+                        count += 1
+            out[i, j] = total / count if count else fill
+    return out
+
+
+def _predicted(tile: np.ndarray) -> np.ndarray:
+    """A tile through the TIFF predictor: horizontal differencing of integers (TIFF 6.0 section 14), or of
+    the bytes of reals rearranged most significant byte first (Adobe's TIFF Technical Note 3)."""
+    if tile.dtype.kind == "f":
+        rows = tile.shape[0]
+        tile = tile.view(np.uint8).reshape(rows, -1, tile.itemsize)[:, :, ::-1].transpose(0, 2, 1).reshape(rows, -1)
+    out = np.empty_like(tile)
+    out[:, 0] = tile[:, 0]
+    np.subtract(tile[:, 1:], tile[:, :-1], out=out[:, 1:])
+    return out
+
+
+#: GDAL's private TIFF tags: band metadata as XML, and the nodata value as text.
+GDAL_METADATA, GDAL_NODATA = 42112, 42113
+#: The tags copied from GDAL's own GeoTIFF of the layer: GeoTIFF 1.1's ModelPixelScale, ModelTiepoint,
+#: ModelTransformation and GeoKey directory with its double and ASCII parameters, and GDAL's two tags.
+COPIED_TAGS = (33550, 33922, 34264, 34735, 34736, 34737, GDAL_METADATA, GDAL_NODATA)
+
+
+def _georeferencing_tags(spec, dtype: np.dtype, fill, name: str, attrs: dict) -> dict[int, tiff.Tag]:
+    """The CRS, transform, nodata and band-metadata tags of a layer, as GDAL writes them in a GeoTIFF.
+
+    GDAL writes a one-cell GeoTIFF with the layer's georeferencing, band description, units and
+    attributes; its tags hold all of that for any grid size, since the transform's origin is the top-left corner.
+    """
+    crs = rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
+    with MemoryFile() as memory:
+        with memory.open(driver="GTiff", width=1, height=1, count=1, dtype=dtype.name, crs=crs,
+                         transform=spec.transform, nodata=fill) as band:
+            band.set_band_description(1, str(attrs.get("long_name", name)))
+            band.update_tags(1, **{k: str(v) for k, v in attrs.items()})
+            if attrs.get("units"):
+                band.set_band_unit(1, str(attrs["units"]))
+        tags = tiff.read_tags(memory.read())
+    return {code: tags[code] for code in COPIED_TAGS if code in tags}

@@ -1,0 +1,162 @@
+"""COG writing: tiles, overviews and TIFF layout, checked by GDAL (rasterio) and rio-cogeo's validator."""
+import numpy as np
+import pytest
+import rasterio
+from rasterio.io import MemoryFile
+
+from agegrid.grid import GridSpec
+from agegrid.io import tiff
+from agegrid.io.geotiff import CogWriter
+
+REGION, SPACING = (10.0, 30.0, -5.0, 12.0), 0.03  # 567 x 667 cells: two overview levels, ragged edge tiles
+
+
+def layers(shape, seed=5):
+    """A real layer with a NaN hole and a code layer, both with structure a codec can find."""
+    rng = np.random.default_rng(seed)
+    age = np.cumsum(rng.uniform(0, 0.1, shape), axis=1).astype(np.float32)
+    age[40:130, 200:333] = np.nan
+    age[7, 5] = np.nan
+    flag = rng.integers(1, 6, shape).astype(np.int8)
+    return {"age": age, "age_flag": flag}
+
+
+def write_cogs(tmp_path, block, compression="deflate", predictor=False, tag=""):
+    spec = GridSpec(REGION, SPACING, chunk=256)
+    values = layers(spec.shape)
+    targets = {n: tmp_path / f"{n}{tag}.tif" for n in values}
+    attrs = {"age": {"long_name": "crustal age", "units": "Myr"},
+             "age_flag": {"long_name": "how the age was found", "units": "1"}}
+    writer = CogWriter(spec, targets, attrs, {n: v.dtype for n, v in values.items()},
+                       {"age": np.float32(np.nan), "age_flag": np.int8(-128)}, compression, predictor)
+    rows, cols = block
+    ny, nx = spec.shape
+    for r0 in range(0, ny, rows):
+        for c0 in range(0, nx, cols):
+            for name, v in values.items():
+                writer.write(name, r0, c0, v[r0:r0 + rows, c0:c0 + cols])
+    staged = writer.finish()
+    return {n: staged[t] for n, t in targets.items()}, values
+
+
+def reference_reduction(values: np.ndarray, averaged: bool) -> np.ndarray:
+    """One overview level computed independently: numpy's nanmean of each 2 x 2 group (ragged edges padded
+    with NaN), or the group's top-left cell for codes."""
+    if not averaged:
+        return values[::2, ::2]
+    ny, nx = values.shape
+    padded = np.full((ny + ny % 2, nx + nx % 2), np.nan)
+    padded[:ny, :nx] = values
+    with np.errstate(invalid="ignore"), pytest.warns(RuntimeWarning):  # all-NaN groups stay NaN
+        return np.nanmean(padded.reshape(padded.shape[0] // 2, 2, -1, 2), axis=(1, 3))
+
+
+def test_overviews_read_by_gdal_are_means_of_valid_cells(tmp_path):
+    from rio_cogeo.cogeo import cog_validate
+
+    paths, values = write_cogs(tmp_path, (256, 256))
+    for name, averaged in (("age", True), ("age_flag", False)):
+        valid, errors, warnings = cog_validate(str(paths[name]), quiet=True)
+        assert valid and not warnings, (errors, warnings)
+        expect = values[name].astype(np.float64)
+        with rasterio.open(paths[name]) as src:
+            assert src.overviews(1) == [2, 4]  # halved until one tile holds the overview
+            assert np.array_equal(src.read(1), values[name], equal_nan=True)
+        for level in range(2):
+            expect = reference_reduction(expect, averaged)
+            with rasterio.open(paths[name], OVERVIEW_LEVEL=level) as ovr:
+                got = ovr.read(1).astype(np.float64)
+            assert got.shape == expect.shape
+            if averaged:
+                assert np.array_equal(np.isnan(got), np.isnan(expect))
+                assert np.allclose(got, expect, rtol=1e-6, equal_nan=True)
+            else:
+                assert np.array_equal(got, expect)
+
+
+def test_file_does_not_depend_on_how_the_layer_arrived(tmp_path):
+    """Blocks smaller than a tile and straddling tile edges give the same bytes as whole-tile blocks."""
+    whole, _ = write_cogs(tmp_path, (256, 512), "zstd", True, tag="_whole")
+    ragged, _ = write_cogs(tmp_path, (100, 70), "zstd", True, tag="_ragged")
+    for name in whole:
+        assert whole[name].read_bytes() == ragged[name].read_bytes()
+
+
+def test_band_metadata_and_georeferencing_as_gdal_writes_them(tmp_path):
+    paths, _ = write_cogs(tmp_path, (256, 256))
+    spec = GridSpec(REGION, SPACING, chunk=256)
+    with rasterio.open(paths["age"]) as src:
+        assert src.crs.to_epsg() == 4326
+        assert src.transform.almost_equals(spec.transform)
+        assert np.isnan(src.nodata)
+        assert src.descriptions == ("crustal age",) and src.units == ("Myr",)
+        assert src.tags(1)["units"] == "Myr"
+    with rasterio.open(paths["age_flag"]) as src:
+        assert src.nodata == -128 and src.dtypes == ("int8",)
+
+
+def test_no_spill_files_are_left(tmp_path):
+    staged, _ = write_cogs(tmp_path, (256, 256))
+    spec = GridSpec(REGION, SPACING, chunk=256)
+    writer = CogWriter(spec, {"age": tmp_path / "left.tif"}, {"age": {"units": "Myr"}}, {"age": np.float32},
+                       {"age": np.float32(np.nan)})
+    writer.write("age", 0, 0, np.zeros((256, 256), np.float32))
+    writer.close()  # a build that failed half-way
+    assert sorted(tmp_path.iterdir()) == sorted(staged.values())
+
+
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")
+def test_read_tags_of_a_gdal_geotiff():
+    with MemoryFile() as memory:
+        with memory.open(driver="GTiff", width=3, height=2, count=1, dtype="int16") as band:
+            band.write(np.arange(6, dtype=np.int16).reshape(2, 3), 1)
+        tags = tiff.read_tags(memory.read())
+    # TIFF 6.0: ImageWidth 256, ImageLength 257, BitsPerSample 258, SampleFormat 339 (2 = signed integer)
+    assert np.frombuffer(tags[tiff.IMAGE_WIDTH].raw, "<u2")[0] == 3
+    assert np.frombuffer(tags[tiff.IMAGE_LENGTH].raw, "<u2")[0] == 2
+    assert np.frombuffer(tags[tiff.BITS_PER_SAMPLE].raw, "<u2")[0] == 16
+    assert np.frombuffer(tags[tiff.SAMPLE_FORMAT].raw, "<u2")[0] == 2
+    with pytest.raises(ValueError):
+        tiff.read_tags(b"MM\x00*\x00\x00\x00\x08")
+
+
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")
+@pytest.mark.parametrize("bigtiff", [False, True])
+def test_pyramid_layout_classic_and_bigtiff(tmp_path, bigtiff):
+    """A two-level pyramid of raw tiles, classic TIFF and BigTIFF (header version 42 and 43, TIFF 6.0 and the
+    BigTIFF proposal, from memory): GDAL reads both, and rio-cogeo finds the IFDs before the data."""
+    from rio_cogeo.cogeo import cog_validate
+
+    image = np.arange(300 * 520, dtype=np.uint16).reshape(300, 520)
+    overview = image[::2, ::2]
+    levels = []
+    for index, values in enumerate((image, overview)):
+        ny, nx = values.shape
+        spill = tmp_path / f"level{index}.tiles"
+        offsets, counts = [], []
+        with open(spill, "wb") as fh:
+            for ti in range(-(-ny // 256)):
+                for tj in range(-(-nx // 256)):
+                    tile = np.zeros((256, 256), np.uint16)
+                    part = values[ti * 256:(ti + 1) * 256, tj * 256:(tj + 1) * 256]
+                    tile[:part.shape[0], :part.shape[1]] = part
+                    offsets.append(fh.tell())
+                    counts.append(fh.write(tile.tobytes()))
+        S, L = tiff.SHORT, tiff.LONG
+        tags = {tiff.IMAGE_WIDTH: tiff.Tag.of(L, nx), tiff.IMAGE_LENGTH: tiff.Tag.of(L, ny),
+                tiff.BITS_PER_SAMPLE: tiff.Tag.of(S, 16), tiff.COMPRESSION: tiff.Tag.of(S, 1),
+                tiff.PHOTOMETRIC: tiff.Tag.of(S, 1), tiff.SAMPLES_PER_PIXEL: tiff.Tag.of(S, 1),
+                tiff.TILE_WIDTH: tiff.Tag.of(S, 256), tiff.TILE_LENGTH: tiff.Tag.of(S, 256),
+                tiff.SAMPLE_FORMAT: tiff.Tag.of(S, 1)}
+        if index:
+            tags[tiff.NEW_SUBFILE_TYPE] = tiff.Tag.of(L, 1)
+        levels.append(tiff.Level(tags, spill, np.array(offsets), np.array(counts)))
+    target = tmp_path / "pyramid.tif"
+    tiff.write_pyramid(target, levels, bigtiff=bigtiff)
+    assert target.read_bytes()[2] == (43 if bigtiff else 42)
+    valid, errors, _ = cog_validate(str(target), quiet=True)
+    assert valid, errors
+    with rasterio.open(target) as src:
+        assert np.array_equal(src.read(1), image)
+    with rasterio.open(target, OVERVIEW_LEVEL=0) as ovr:
+        assert np.array_equal(ovr.read(1), overview)
