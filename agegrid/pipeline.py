@@ -1,7 +1,7 @@
 """The build: stages wired from inputs to outputs, timed, logged, written atomically.
 
 Every stage is a function of its inputs; the layers stay lazy (dask) until one streaming pass computes
-each block once and hands it to the NetCDF, the GeoTIFF sources and the samples the tables and the report
+each block once and hands it to the NetCDF, the COG tiles and the samples the tables and the report
 read, so nothing is computed twice.
 """
 from __future__ import annotations
@@ -284,7 +284,7 @@ def _sampled_layers(config) -> tuple:
 
 
 def _cog_writer(config, ds: xr.Dataset, spec, attrs: dict, out_dir: Path) -> CogWriter:
-    """The GeoTIFF sources of every layer written as a COG, with the NetCDF's types and fill values."""
+    """The COG writer of every layer written as a GeoTIFF, with the NetCDF's types and fill values."""
     enc = encoding(ds, spec)
     names = [n for n in ds.data_vars if n not in NOT_IN_GEOTIFF and n != "crs"]
     return CogWriter(spec, {n: out_dir / f"{config.name}_{n}.tif" for n in names}, attrs,
@@ -396,12 +396,12 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     sinks.append(cogs.write)
                 if config.output.report:  # import the plotting library while the layers are computed
                     threading.Thread(target=preload_plotting, daemon=True).start()
-                with stages("compute and write netcdf"), _progress(progress and sched["kind"] == "threads"):
+                with stages("compute and write layers"), _progress(progress and sched["kind"] == "threads"):
                     staged_nc = write_netcdf(ds, nc_target, spec, sinks)
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
                 if cogs is not None:
-                    with stages("write geotiff"):
+                    with stages("assemble geotiff"):
                         staged.update(cogs.finish())
                 sample = samples.dataset(ds)
                 with stages("depth statistics"):

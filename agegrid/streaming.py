@@ -2,7 +2,7 @@
 
 A window is a run of blocks along one block row (as many as fit ``WINDOW_MB``). The layers of a window
 are computed together (layers sharing a computation, like the age engine's blocks, compute it once);
-while the sinks (NetCDF chunks, GeoTIFF sources, table samples) consume one window in a background
+while the sinks (NetCDF chunks, COG tiles, table samples) consume one window in a background
 thread, the next is computed, so writing overlaps computing and at most two windows are in memory.
 """
 from __future__ import annotations

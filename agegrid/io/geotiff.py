@@ -58,7 +58,6 @@ class CogWriter:
 
     def __init__(self, spec, targets: dict[str, Path], attrs: dict, dtypes: dict, fills: dict,
                  compression: str = "deflate", predictor: bool = False, threads: int | None = None):
-        self.targets = targets
         self.codec, self.predictor = CODECS[compression], predictor
         self.threads = threads or os.cpu_count() or 1
         self.pool = ThreadPoolExecutor(self.threads)
@@ -138,6 +137,7 @@ class _Pyramid:
                  predictor: bool):
         self.target, self.dtype, self.fill = target, dtype.newbyteorder("<"), fill
         self.averaged, self.codec, self.predictor = averaged, codec, predictor
+        self.georeferencing = _georeferencing_tags(spec, self.dtype, fill, name, attrs)
         self.shapes = [tuple(spec.shape)]
         while max(self.shapes[-1]) > BLOCK:  # halve until the overview fits one tile
             self.shapes.append(tuple(-(-n // 2) for n in self.shapes[-1]))
@@ -149,7 +149,6 @@ class _Pyramid:
             self.counts.append(np.zeros(tiles, dtype=np.int64))
             self.spills.append(staging_path(target.with_suffix(f".level{len(self.spills)}.tiles")))
             self.files.append(open(self.spills[-1], "w+b"))
-        self.georeferencing = _georeferencing_tags(spec, self.dtype, fill, name, attrs)
 
     def tile_extent(self, level: int, ti: int, tj: int) -> tuple[int, int]:
         """Rows and columns of tile (ti, tj) of ``level`` inside the image."""

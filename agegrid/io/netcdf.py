@@ -212,7 +212,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
 
     The structure is written first (:func:`create_netcdf`); the lazy layers are then computed window by
     window (:func:`agegrid.streaming.stream`) and their chunks written by :class:`ChunkWriter`.
-    ``extra_sinks`` receive the same blocks (GeoTIFF sources, table samples).
+    ``extra_sinks`` receive the same blocks (COG tiles, table samples).
     """
     from agegrid.streaming import stream
 
