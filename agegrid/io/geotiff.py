@@ -102,11 +102,10 @@ class CogWriter:
         """Encode what is left and assemble the COGs; returns {target: staged COG}."""
         while self.pending:
             self._collect_first()
-        staged = {}
+        staged = {layer.target: staging_path(layer.target) for layer in self.layers.values()}
         try:
-            for layer in self.layers.values():
-                staged[layer.target] = staging_path(layer.target)
-                layer.assemble(staged[layer.target])
+            with ThreadPoolExecutor(self.threads) as pool:  # the copies run in the kernel, without the GIL
+                list(pool.map(lambda layer: layer.assemble(staged[layer.target]), self.layers.values()))
         except BaseException:
             for path in staged.values():
                 path.unlink(missing_ok=True)
