@@ -37,6 +37,7 @@ from __future__ import annotations
 
 import logging
 import os
+import uuid
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -45,7 +46,7 @@ import numpy as np
 from numba import njit
 
 from agegrid import sphere
-from agegrid.age_kernel import NARROW, WIDE
+from agegrid.age_kernel import DATING, MOTION, PARTS
 
 log = logging.getLogger("agegrid")
 
@@ -62,13 +63,15 @@ FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CONTROL, FLAG_TOO_FA
 FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outside_domain "
                  "no_control_in_compartment beyond_extrapolation_limit")
 
+#: The part of the kernel (``"dating"``, the age stage, or ``"motion"``, the kinematic layers) that returns
+#: each layer.
+PART_OF = {name: part for part, (wide, narrow) in PARTS.items() for name in wide + narrow}
 #: Layers the kernel returns, in order.
-LAYERS = ("age", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "age_fraction",
-          "half_rate", "spreading_azimuth", "compartment", "flank", "full_rate", "asymmetry")
+LAYERS = tuple(PART_OF)
 #: The kernel's types: float64 where retiming needs it, float32 elsewhere (integers are exact in float32).
-LAYER_DTYPES = {name: np.dtype(np.float64 if name in WIDE else np.float32) for name in LAYERS}
-#: Bytes a cell takes in a block returned by :func:`evaluate_block`.
-BLOCK_BYTES_PER_CELL = sum(d.itemsize for d in LAYER_DTYPES.values())
+LAYER_DTYPES = {name: np.dtype(np.float64 if name in PARTS[PART_OF[name]][0] else np.float32) for name in LAYERS}
+#: Bytes a cell takes in a block returned by :func:`evaluate_block`, per part.
+BLOCK_BYTES_PER_CELL = {part: 8 * len(wide) + 4 * len(narrow) for part, (wide, narrow) in PARTS.items()}
 
 
 @dataclass
@@ -502,36 +505,38 @@ FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CO
 
 
 def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, domain: np.ndarray,
-                   factors: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
-    """All :data:`LAYERS` of one block of cells, packed in one byte array (see :func:`block_layer`).
+                   factors: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], part: str = "dating") -> np.ndarray:
+    """One part's layers (:data:`~agegrid.age_kernel.PARTS`) of one block of cells, packed in one byte array
+    (see :func:`block_layer`).
 
-    ``factors`` are the block's unit-vector factors (:func:`block_factors`). The float64 planes of
-    ``age_kernel.WIDE`` come first, then the float32 planes of ``age_kernel.NARROW``: one allocation,
-    each plane contiguous.
+    ``factors`` are the block's unit-vector factors (:func:`block_factors`). The part's float64 planes
+    come first, then its float32 planes: one allocation, each plane contiguous.
     """
     from agegrid.age_kernel import evaluate
 
+    wide_names, narrow_names = PARTS[part]
     cells = labels.size
-    buffer = np.empty((BLOCK_BYTES_PER_CELL,) + labels.shape, dtype=np.uint8)
+    buffer = np.empty((BLOCK_BYTES_PER_CELL[part],) + labels.shape, dtype=np.uint8)
     flat = buffer.reshape(-1)
-    wide = flat[:8 * len(WIDE) * cells].view(np.float64).reshape((len(WIDE),) + labels.shape)
-    narrow = flat[8 * len(WIDE) * cells:].view(np.float32).reshape((len(NARROW),) + labels.shape)
+    wide = flat[:8 * len(wide_names) * cells].view(np.float64).reshape((len(wide_names),) + labels.shape)
+    narrow = flat[8 * len(wide_names) * cells:].view(np.float32).reshape((len(narrow_names),) + labels.shape)
     p = packed
     evaluate(*factors, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
              p.support, p.borrows,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
-             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, wide, narrow)
+             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, DATING if part == "dating" else MOTION, wide, narrow)
     return buffer
 
 
 def block_layer(buffer: np.ndarray, name: str) -> np.ndarray:
-    """One layer of a block returned by :func:`evaluate_block` (a view, no copy)."""
+    """One layer of a block returned by :func:`evaluate_block` for the layer's part (a view, no copy)."""
     shape = buffer.shape[1:]
-    if name in WIDE:
-        k = WIDE.index(name)
+    wide, narrow = PARTS[PART_OF[name]]
+    if name in wide:
+        k = wide.index(name)
         return buffer[8 * k:8 * (k + 1)].reshape(-1).view(np.float64).reshape(shape)
-    k = 8 * len(WIDE) + 4 * NARROW.index(name)
+    k = 8 * len(wide) + 4 * narrow.index(name)
     return buffer[k:k + 4].reshape(-1).view(np.float32).reshape(shape)
 
 
@@ -566,7 +571,9 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
     and the others are computed and stored.
     """
     chunks = spec.chunks
-    template = da.empty(spec.shape, chunks=chunks, dtype=np.int32)
+    # tasks named by one random token: dask would otherwise pickle the model and the labels to hash them
+    token = uuid.uuid4().hex
+    template = da.empty(spec.shape, chunks=chunks, dtype=np.int32, name=f"age-grid-{token}")
     packed = PackedModel.pack(model)
     settings = model.settings
     if cache is not None:
@@ -582,25 +589,29 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
         with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing and decompressing release the GIL
             cache.plan(dict(zip(blocks, pool.map(key, blocks))))
 
-    def block(_, block_info=None):
+    def block(_, part, block_info=None):
         info = block_info[0]
         (r0, r1), (c0, c1) = info["array-location"]
         key = None if cache is None else cache.keys[tuple(info["chunk-location"])]
         if key is not None:
-            stored = cache.load(key)
+            stored = cache.load(key, part)
             if stored is not None:
                 return stored
         window = slice(r0, r1), slice(c0, c1)
-        result = evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window))
+        result = evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), part)
         if key is not None:
-            cache.store(key, result)
+            cache.store(key, result, part)
         return result
 
-    packed_blocks = da.map_blocks(block, template, dtype=np.uint8, new_axis=0,
-                                  chunks=((BLOCK_BYTES_PER_CELL,),) + template.chunks)
-    # blockwise without concatenation: each layer is a view of its block's buffer, not a copy of it
-    return {name: da.blockwise(_layer_of, "ij", packed_blocks, "kij", name, None, concatenate=False,
-                               dtype=LAYER_DTYPES[name], meta=np.empty((0, 0), LAYER_DTYPES[name]))
+    # one task per block and part: the age stage computes only the dating part; the kinematic layers add the
+    # motion part. Each layer is a view of its block's buffer (blockwise without concatenation), not a copy
+    packed_blocks = {part: da.map_blocks(block, template, part=part, dtype=np.uint8, new_axis=0,
+                                         chunks=((BLOCK_BYTES_PER_CELL[part],),) + template.chunks,
+                                         meta=np.empty((0, 0, 0), np.uint8), name=f"age-engine-{part}-{token}")
+                     for part in PARTS}
+    return {name: da.blockwise(_layer_of, "ij", packed_blocks[PART_OF[name]], "kij", name, None, concatenate=False,
+                               dtype=LAYER_DTYPES[name], meta=np.empty((0, 0), LAYER_DTYPES[name]),
+                               name=f"{name}-{token}")
             for name in LAYERS}
 
 

@@ -2,8 +2,15 @@
 blocks in parallel, so no numba threading layer is needed).
 
 For each cell: its compartment's frame coordinates (w, s), the column of the trace table, a binary
-search for the two traces that bracket s, and from that pair the age, its uncertainty, the brackets and
-fraction kept for retiming, the half-rate and the spreading azimuth (see :mod:`agegrid.age`).
+search for the two traces that bracket s, and from that pair, in one of two parts:
+
+- *dating* (the age stage): the age, its uncertainty (which needs the pair's half-rate), the flag, and
+  the brackets and fraction kept for retiming;
+- *motion* (the kinematic layers): the half-rate, the spreading azimuth, the flank, and the full rate
+  and asymmetry against the conjugate flank's pair at the same age.
+
+The parts are separate passes over a block so that the age stage computes and stores only what the age
+needs; both locate the bracketing pair the same way, so their layers always agree (see :mod:`agegrid.age`).
 """
 from __future__ import annotations
 
@@ -14,12 +21,17 @@ from numba import njit
 
 from agegrid.sphere import EARTH_RADIUS_KM
 
-#: Layers kept in float64 (``wide``: retiming needs them exact) and in float32 (``narrow``), in plane order.
-WIDE = ("age", "age_fraction")
-NARROW = ("age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old", "half_rate", "spreading_azimuth",
-          "compartment", "flank", "full_rate", "asymmetry")
-AGE, FRACTION = range(len(WIDE))
-(SIGMA, FLAG, YOUNG, OLD, RATE, AZIMUTH, COMPARTMENT, FLANK, FULL_RATE, ASYMMETRY) = range(len(NARROW))
+#: The two parts' layers, in plane order: float64 planes (``wide``: retiming needs them exact), then float32
+#: planes (``narrow``).
+PARTS = {
+    "dating": (("age", "age_fraction"), ("age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old",
+                                         "compartment")),
+    "motion": ((), ("half_rate", "spreading_azimuth", "flank", "full_rate", "asymmetry")),
+}
+DATING, MOTION = range(len(PARTS))
+AGE, FRACTION = range(len(PARTS["dating"][0]))
+SIGMA, FLAG, YOUNG, OLD, COMPARTMENT = range(len(PARTS["dating"][1]))
+RATE, AZIMUTH, FLANK, FULL_RATE, ASYMMETRY = range(len(PARTS["motion"][1]))
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -43,9 +55,10 @@ def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
 @njit(cache=True, nogil=True, error_model="numpy")
 def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
              sigma, support, borrows, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags,
-             wide, narrow):
-    """Fill ``wide`` (float64 planes of :data:`WIDE`) and ``narrow`` (float32 planes of :data:`NARROW`)
-    for the unit vectors (rs rx, rs ry, rz) of a block of cells (2-D arrays; broadcast views welcome).
+             part, wide, narrow):
+    """Fill one part's planes (:data:`PARTS`; ``part`` is :data:`DATING` or :data:`MOTION`): ``wide`` the float64
+    planes and ``narrow`` the float32 planes, for the unit vectors (rs rx, rs ry, rz) of a block of cells
+    (2-D arrays; broadcast views welcome).
 
     ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far). ``borrows`` says,
     per compartment, whether any of its traces is borrowed; ``support`` is, per trace, NaN for a trace
@@ -55,22 +68,25 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
     """
     ny, nx = labels.shape
     nan = np.nan
+    dating = part == DATING
     for i in range(ny):
         last_lab, last_a, conj_lab, conj_lo = -1, -1, -1, -1
         for jj in range(nx):
             lab = labels[i, jj]
-            narrow[COMPARTMENT, i, jj] = lab
-            narrow[YOUNG, i, jj] = -1.0
-            narrow[OLD, i, jj] = -1.0
-            narrow[FLANK, i, jj] = 0.0
-            wide[AGE, i, jj] = nan
-            wide[FRACTION, i, jj] = nan
-            for layer in (SIGMA, RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
-                narrow[layer, i, jj] = nan
+            if dating:
+                narrow[COMPARTMENT, i, jj] = lab
+                narrow[YOUNG, i, jj] = -1.0
+                narrow[OLD, i, jj] = -1.0
+                narrow[SIGMA, i, jj] = nan
+                wide[AGE, i, jj] = nan
+                wide[FRACTION, i, jj] = nan
+                narrow[FLAG, i, jj] = flags[2] if not domain[i, jj] else flags[3]
+            else:
+                narrow[FLANK, i, jj] = 0.0
+                for layer in (RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
+                    narrow[layer, i, jj] = nan
             if not domain[i, jj]:
-                narrow[FLAG, i, jj] = flags[2]
                 continue
-            narrow[FLAG, i, jj] = flags[3]
             if lab <= 0 or lab >= has.shape[0] or not has[lab]:
                 continue
             px, py, pz = rs[i, jj] * rx[i, jj], rs[i, jj] * ry[i, jj], rz[i, jj]
@@ -127,9 +143,7 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
             age = ta + f * (tb - ta)
             mirror = age < 0.0
             young_first = ta <= tb
-            fy = f if young_first else 1.0 - f
             if mirror:
-                fy = -fy
                 age = -age
             outside = f < 0.0 or f > 1.0 or mirror
             span = 0.0
@@ -137,7 +151,8 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                 t_end = ta if f < 0.0 else tb
                 span = abs(age - t_end)
             if span > max_extrapolation:
-                narrow[FLAG, i, jj] = flags[4]
+                if dating:
+                    narrow[FLAG, i, jj] = flags[4]
                 continue
             borrowed = False
             if borrows[lab]:
@@ -145,21 +160,33 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                 borrowed = sup_a == sup_a or sup_b == sup_b  # a bracket from the conjugate flank (not NaN)
                 if borrowed:
                     span += max(age - (sup_a if sup_a == sup_a else sup_b), 0.0)
-            extrapolated = outside or borrowed
-            narrow[FLAG, i, jj] = flags[1] if extrapolated else flags[0]
-            wide[AGE, i, jj] = age
-            wide[FRACTION, i, jj] = fy
-            narrow[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
-            narrow[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
-            # rate and direction from the bracketing pair
+            # the pair's half-rate r = gap R / (dt sqrt(stretch)): their perpendicular great-circle separation
+            # over their age difference
             fc = min(max(f, 0.0), 1.0)
             slope = ((1.0 - fc) * (V[ia + 1] - V[ia]) + fc * (V[ib + 1] - V[ib])) / dw[lab]
             cos2 = max(1.0 - s * s, 1e-12)
             tilt = slope * (1.0 + w * w) / cos2
+            stretch = cos2 * (1.0 + tilt * tilt)
             dt = abs(tb - ta)
-            rate = nan
-            if gap > 0 and dt > 0:
-                rate = gap * EARTH_RADIUS_KM / (dt * math.sqrt(cos2 * (1.0 + tilt * tilt)))
+            paired = gap > 0 and dt > 0
+            if dating:
+                fy = f if young_first else 1.0 - f
+                narrow[FLAG, i, jj] = flags[1] if outside or borrowed else flags[0]
+                wide[AGE, i, jj] = age
+                wide[FRACTION, i, jj] = -fy if mirror else fy
+                narrow[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
+                narrow[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
+                da = D[ia] * (1.0 - t) + D[ia + 1] * t
+                db = D[ib] * (1.0 - t) + D[ib + 1] * t
+                sa2 = sigma[to + a] ** 2 + (growth * da) ** 2
+                sb2 = sigma[to + b] ** 2 + (growth * db) ** 2
+                # the traces' position variance over r^2, without the square root r needs
+                position2 = (((1.0 - fc) ** 2 * sa2 + fc * fc * sb2) * (dt * dt * stretch)
+                             / (gap * gap * EARTH_RADIUS_KM * EARTH_RADIUS_KM)) if paired else nan
+                narrow[SIGMA, i, jj] = math.sqrt(position2 + (timescale_fraction * age) ** 2
+                                              + (extrapolation_fraction * span) ** 2)
+                continue
+            rate = gap * EARTH_RADIUS_KM / (dt * math.sqrt(stretch)) if paired else nan
             narrow[RATE, i, jj] = rate
             # flank and the conjugate flank's rate at the same age and along-strike position
             r = ridge[lab]
@@ -217,11 +244,3 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
             north = -pz * px * gx - pz * py * gy + (px * px + py * py) * gz
             az = math.degrees(math.atan2(east, north))
             narrow[AZIMUTH, i, jj] = az + 360.0 if az < 0 else az
-            # uncertainty
-            da = D[ia] * (1.0 - t) + D[ia + 1] * t
-            db = D[ib] * (1.0 - t) + D[ib + 1] * t
-            sa2 = sigma[to + a] ** 2 + (growth * da) ** 2
-            sb2 = sigma[to + b] ** 2 + (growth * db) ** 2
-            position2 = ((1.0 - fc) ** 2 * sa2 + fc * fc * sb2) / (rate * rate) if rate > 0 else nan
-            narrow[SIGMA, i, jj] = math.sqrt(position2 + (timescale_fraction * age) ** 2
-                                          + (extrapolation_fraction * span) ** 2)

@@ -101,26 +101,27 @@ class BlockCache:
         return digest.hexdigest()
 
     def plan(self, keys: dict[tuple[int, int], str]) -> None:
-        """Record the key of every block and count those already stored."""
+        """Record the key of every block and count those whose age (the dating part) is already stored."""
         self.keys = keys
-        self.reused = sum(1 for k in keys.values() if self.enabled and self.path(k).is_file())
+        self.reused = sum(1 for k in keys.values() if self.enabled and self.path(k, "dating").is_file())
 
-    def path(self, key: str) -> Path:
-        return self.root / f"{key}.npy"
+    def path(self, key: str, part: str) -> Path:
+        """The file of one part (see :data:`agegrid.age_kernel.PARTS`) of the block with this key."""
+        return self.root / f"{key}-{part}.npy"
 
-    def load(self, key: str) -> np.ndarray | None:
-        """A stored block, or None (also when the cache is disabled by ``--force``)."""
+    def load(self, key: str, part: str) -> np.ndarray | None:
+        """A stored part of a block, or None (also when the cache is disabled by ``--force``)."""
         if not self.enabled:
             return None
         try:
-            return np.load(self.path(key), allow_pickle=False)
+            return np.load(self.path(key, part), allow_pickle=False)
         except (OSError, ValueError):
             return None
 
-    def store(self, key: str, result: np.ndarray) -> None:
-        """Store a block atomically (temporary file, then rename)."""
-        path = self.path(key)
-        tmp = path.with_name(f".{key}.{os.getpid()}.{threading.get_ident()}.tmp")
+    def store(self, key: str, result: np.ndarray, part: str) -> None:
+        """Store a part of a block atomically (temporary file, then rename)."""
+        path = self.path(key, part)
+        tmp = path.with_name(f".{path.stem}.{os.getpid()}.{threading.get_ident()}.tmp")
         with open(tmp, "wb") as fh:
             np.save(fh, result, allow_pickle=False)
         os.replace(tmp, path)
@@ -130,7 +131,7 @@ class BlockCache:
         used = set(self.keys.values())
         removed = 0
         for path in self.root.glob("*.npy"):
-            if path.stem not in used:
+            if path.stem.rsplit("-", 1)[0] not in used:
                 path.unlink(missing_ok=True)
                 removed += 1
         for path in self.root.glob(".*.tmp"):

@@ -1,7 +1,7 @@
 """Per-segment rate tables: median half-rate, full rate and asymmetry by flank and age band.
 
 The kinematic layers themselves (half-rate, azimuth, flank, full rate, asymmetry) come out of the
-age kernel, from the same bracketing traces as the age (see :mod:`agegrid.age_kernel`).
+age kernel's motion part, from the same bracketing traces as the age (see :mod:`agegrid.age_kernel`).
 """
 from __future__ import annotations
 

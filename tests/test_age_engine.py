@@ -102,6 +102,28 @@ def test_half_rate_and_azimuth(dense):
     assert not np.isinf(dense.layers["half_rate"]).any()
 
 
+def test_dating_and_motion_parts_agree_cell_by_cell(dense):
+    """The age stage (dating part) and the kinematic layers (motion part) run as separate passes; they must
+    find the same bracketing pair in every cell."""
+    dated = np.isfinite(dense.layers["age"])
+    assert np.array_equal(dated, np.isfinite(dense.layers["spreading_azimuth"]))
+    # both need the pair's half-rate: the uncertainty through 1 / r^2, the rate layer directly
+    assert np.array_equal(np.isfinite(dense.layers["age_uncertainty"]), np.isfinite(dense.layers["half_rate"]))
+    assert np.array_equal(dated & (dense.layers["compartment"] > 0), dated & (dense.layers["flank"] != 0))
+
+
+def test_age_stage_computes_only_the_dating_part(dense):
+    from agegrid.age import age_layers
+    from agegrid.compartments import build_compartments
+
+    comps = build_compartments(dense.spec, dense.basin.fracture_zones(), dense.basin.domain_polygon())
+    lazy = age_layers(dense.spec, comps, dense.model)
+    for name in ("age", "age_uncertainty", "age_flag"):
+        keys = [str(k) for k in dict(lazy[name].__dask_graph__())]
+        assert any("dating" in k for k in keys) and not any("motion" in k for k in keys), name
+    assert any("motion" in str(k) for k in dict(lazy["half_rate"].__dask_graph__()))
+
+
 def test_uncertainty_is_sane(dense):
     sigma = dense.layers["age_uncertainty"]
     ok = np.isfinite(dense.layers["age"])
