@@ -316,32 +316,29 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
         ridge_trace, side, flanks = None, np.full(len(v), orientation), (orientation,)
     for flank in flanks:
         previous = ridge_trace
-        on = (side == flank) & ~ridge
-        for b in sorted(np.unique(bound[on]), key=lambda b: age[on][bound[on] == b][0]):
-            sel = on & (bound == b)
-            t = float(age[sel][0])
-            base = None if previous is None else np.interp(col[sel], np.arange(ncol), previous[3])
-            offset = v[sel] - (0 if base is None else base)
-            keep = np.ones(sel.sum(), bool)
+        for idx in _boundary_groups(np.flatnonzero((side == flank) & ~ridge), bound, age):
+            t = float(age[idx[0]])
+            base = None if previous is None else np.interp(col[idx], np.arange(ncol), previous[3])
+            offset = v[idx] - (0 if base is None else base)
+            keep = np.ones(len(idx), bool)
             if previous is not None:
-                keep = _plausible(offset * flank, sigma[sel], t - previous[1], settings)
-            keep[keep] = _consistent(col[sel][keep], offset[keep], sigma[sel][keep])
+                keep = _plausible(offset * flank, sigma[idx], t - previous[1], settings)
+            keep[keep] = _consistent(col[idx][keep], offset[keep], sigma[idx][keep])
             if not keep.all():
-                idx = np.flatnonzero(sel)[~keep]
-                outliers.extend(int(i) for i in idx)
-                sel[idx] = False
-            if not sel.any():
+                outliers.extend(int(i) for i in idx[~keep])
+                idx = idx[keep]
+            if not len(idx):
                 continue
-            V, D = _trace(col[sel], v[sel], ncol, NO_TRACE if previous is None else previous[3], km_per_col)
+            V, D = _trace(col[idx], v[idx], ncol, NO_TRACE if previous is None else previous[3], km_per_col)
             if previous is not None:
-                xp = np.rint(col[sel]).astype(int).clip(0, ncol - 1)
+                xp = np.rint(col[idx]).astype(int).clip(0, ncol - 1)
                 gap = _median((V[xp] - previous[3][xp]) * flank)
                 rate = gap * sphere.EARTH_RADIUS_KM / max(t - previous[1], 1e-9)
                 if not (settings.min_half_rate <= rate <= settings.max_half_rate):
-                    dropped.append({"compartment": int(label), "boundary": int(b), "age_ma": t, "flank": flank,
-                                    "points": int(sel.sum()), "implied_half_rate_mm_yr": float(rate)})
+                    dropped.append({"compartment": int(label), "boundary": int(bound[idx[0]]), "age_ma": t,
+                                    "flank": flank, "points": int(len(idx)), "implied_half_rate_mm_yr": float(rate)})
                     continue
-            traces.append((flank, t, int(b), V, D, _median(sigma[sel]), np.nan))
+            traces.append((flank, t, int(bound[idx[0]]), V, D, _median(sigma[idx]), np.nan))
             previous = traces[-1]
     if ridge_trace is not None:
         by_flank = {f: [tr for tr in traces if tr[0] == f] for f in (-1, 1)}
@@ -364,6 +361,14 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
         label=int(label), frame=frame, u0=float(u0), du=float(du), V=V, D=np.array([tr[4] for tr in ordered]),
         sigma=np.array([tr[5] for tr in ordered]), ages=np.array([tr[1] for tr in ordered]),
         bounds=np.array([tr[2] for tr in ordered], dtype=np.int32), support=np.array([tr[6] for tr in ordered]))
+
+
+def _boundary_groups(points: np.ndarray, bound: np.ndarray, age: np.ndarray) -> list[np.ndarray]:
+    """The indices ``points`` grouped by dated boundary (each group in its original order), youngest first."""
+    order = np.argsort(bound[points], kind="stable")
+    ordered = points[order]
+    starts = np.flatnonzero(np.diff(bound[ordered])) + 1
+    return sorted(np.split(ordered, starts), key=lambda group: age[group[0]]) if len(points) else []
 
 
 def _position_at(traces: list, age: float) -> np.ndarray:
