@@ -14,11 +14,17 @@ A cell at (u, v) takes the two traces that bracket its v in its column, and the 
 ``t_a + f (t_b - t_a)`` with ``f`` the fraction of the great-circle distance between them (the
 distance-ratio rule for gridding between dated isochrons). Beyond the outermost trace the last pair's
 rate is continued up to ``max_extrapolation_myr``; beyond a ridge with no conjugate control the
-conjugate flank is mirrored. A flank whose control stops younger than its conjugate's borrows the
-conjugate's older traces, their spacing scaled by the ratio of the two flanks' widths from the ridge to
-the flank's oldest control (the mean asymmetry of their common history): those cells are flagged
-extrapolated, count the age beyond the flank's oldest control as extrapolated span ``x`` below, and get no
-full rate or asymmetry (there is no measured conjugate pair). The same pair gives the half-rate (their
+conjugate flank is mirrored.
+
+A flank that lacks isochrons borrows them. Segments of one ridge system (strike circles with poles
+within :data:`SIBLING_MAX_POLE_ANGLE_DEG`) share their plates, so the same flank of every segment grows
+alike: an isochron missing between two of the flank's own traces is placed at the fraction of the width
+between them that it takes in the other segments, and isochrons beyond the flank's oldest control follow
+the other segments' relative growth of that flank's width. Beyond what they reach, the conjugate's older
+traces are carried over, their spacing scaled by the ratio of the two flanks' widths from the ridge to
+the flank's oldest trace (the mean asymmetry of their common history). Cells dated beyond the flank's
+own control are flagged extrapolated, count the age beyond its oldest control as extrapolated span ``x``
+below, and get no full rate or asymmetry (there is no measured conjugate pair). The same pair gives the half-rate (their
 perpendicular great-circle separation over their age difference) and the spreading azimuth (normal to
 the traces, toward older).
 
@@ -54,6 +60,9 @@ log = logging.getLogger("agegrid")
 GROWTH_PER_KM = 0.02
 #: Extrapolated age span counted as 1-sigma uncertainty (fraction).
 EXTRAPOLATION_FRACTION = 0.25
+#: Ridge segments whose strike circles' poles lie within this angle belong to one ridge system (agegrid's
+#: choice: segments offset by transforms lie on nearly one great circle).
+SIBLING_MAX_POLE_ANGLE_DEG = 25.0
 #: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
 MIN_COS_FROM_CENTRE = 0.17
 #: The empty trace passed as 'no younger trace' to :func:`_trace`.
@@ -268,8 +277,29 @@ def _plausible(offset: np.ndarray, sigma_km: np.ndarray, dt: float, settings: Se
     return ~(fast | slow)
 
 
-def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad, settings, dropped, outliers):
-    """Fit the frame and build the ordered traces of one compartment (None if it has too little)."""
+@dataclass
+class TraceSet:
+    """The traces of one compartment drawn through its control, before the flanks are filled and ordered.
+
+    A trace is a tuple ``(flank, age, boundary, V, D, sigma, support)`` (see :class:`CompartmentModel`).
+    """
+
+    label: int
+    frame: Frame
+    u0: float
+    du: float
+    ridge: tuple | None
+    traces: list
+    #: +1 or -1: the side a ridge-less compartment's ages grow toward
+    orientation: int = 1
+
+    def flank(self, side: int) -> list:
+        """The controlled traces of one flank, youngest first."""
+        return [tr for tr in self.traces if tr[0] == side]
+
+
+def _compartment_traces(label, xyz, age, bound, kind, sigma, extent, spacing_rad, settings, dropped, outliers):
+    """Fit the frame and draw the traces of one compartment through its control (None if it has none)."""
     ridge = kind == 0
     frame = Frame.fit(xyz[ridge]) if ridge.sum() >= 2 else None
     if frame is None:
@@ -340,15 +370,18 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
                     continue
             traces.append((flank, t, int(bound[idx[0]]), V, D, _median(sigma[idx]), np.nan))
             previous = traces[-1]
-    if ridge_trace is not None:
-        by_flank = {f: [tr for tr in traces if tr[0] == f] for f in (-1, 1)}
-        traces += [tr for f in (-1, 1) for tr in _conjugate_fill(ridge_trace, by_flank[f], by_flank[-f], f)]
-    if ridge_trace is None:
-        ordered = traces if flanks[0] > 0 else traces[::-1]
+    return TraceSet(int(label), frame, float(u0), float(du), ridge_trace, traces, flanks[0])
+
+
+def _assemble(ts: TraceSet, filled: list) -> CompartmentModel | None:
+    """The compartment model: its traces and the ``filled`` ones ordered so V grows (None if fewer than two)."""
+    traces = ts.traces + filled
+    if ts.ridge is None:
+        ordered = traces if ts.orientation > 0 else traces[::-1]
     else:
-        minus = [tr for tr in traces if tr[0] < 0][::-1]
-        plus = [tr for tr in traces if tr[0] > 0]
-        ordered = minus + [ridge_trace] + plus
+        minus = sorted((tr for tr in traces if tr[0] < 0), key=lambda tr: -tr[1])
+        plus = sorted((tr for tr in traces if tr[0] > 0), key=lambda tr: tr[1])
+        ordered = minus + [ts.ridge] + plus
     if len(ordered) < 2:
         return None
     V = np.array([tr[3] for tr in ordered])
@@ -358,7 +391,7 @@ def _compartment_model(label, xyz, age, bound, kind, sigma, extent, spacing_rad,
     for k in range(anchor - 1, -1, -1):
         V[k] = np.minimum(V[k], V[k + 1])
     return CompartmentModel(
-        label=int(label), frame=frame, u0=float(u0), du=float(du), V=V, D=np.array([tr[4] for tr in ordered]),
+        label=ts.label, frame=ts.frame, u0=ts.u0, du=ts.du, V=V, D=np.array([tr[4] for tr in ordered]),
         sigma=np.array([tr[5] for tr in ordered]), ages=np.array([tr[1] for tr in ordered]),
         bounds=np.array([tr[2] for tr in ordered], dtype=np.int32), support=np.array([tr[6] for tr in ordered]))
 
@@ -379,13 +412,96 @@ def _position_at(traces: list, age: float) -> np.ndarray:
     return traces[k - 1][3] + w * (traces[k][3] - traces[k - 1][3])
 
 
-def _conjugate_fill(ridge: tuple, own: list, conjugate: list, flank: int) -> list:
+def _siblings(ts: TraceSet, side: int, sets: dict) -> list[tuple[TraceSet, int]]:
+    """The other ridge segments of ``ts``'s ridge system, each with its flank on the same side as ``side``.
+
+    Segments offset by transforms lie on nearly the same great circle, so the poles of their strike
+    circles are close (within :data:`SIBLING_MAX_POLE_ANGLE_DEG`); the same side is the side the poles
+    point to, which may be the other's flank -1 when its frame is turned the other way.
+    """
+    found = []
+    for other in sets.values():
+        if other is ts or other.ridge is None:
+            continue
+        cos = float(ts.frame.n @ other.frame.n)
+        if abs(cos) >= np.cos(np.radians(SIBLING_MAX_POLE_ANGLE_DEG)):
+            found.append((other, side if cos > 0 else -side))
+    return found
+
+
+def _width_profile(ts: TraceSet, side: int) -> tuple[np.ndarray, list, np.ndarray]:
+    """Ages, boundaries and median widths from the ridge (across-strike, along the segment) of the
+    controlled traces of one flank, ridge first."""
+    own = ts.flank(side)
+    ages = np.array([0.0] + [tr[1] for tr in own])
+    widths = np.array([0.0] + [float(np.median(np.abs(tr[3] - ts.ridge[3]))) for tr in own])
+    return ages, [0] + [tr[2] for tr in own], widths
+
+
+def _sibling_gap_fill(ts: TraceSet, side: int, siblings: list[tuple[TraceSet, int]]) -> list:
+    """Traces for the isochrons a flank lacks between two of its own traces that the same flank of other
+    segments of its ridge system has: each placed between its neighbours at the fraction of the width
+    between them that it takes in those segments (median over them), where distance alone would assume
+    one rate across the gap. Returns the new traces; their cells stay interpolated (between own control).
+    """
+    own = ts.flank(side)
+    profiles = [_width_profile(sibling, sibling_side) for sibling, sibling_side in siblings]
+    filled = []
+    for young, old in zip([ts.ridge] + own, own):
+        inside: dict[int, tuple[float, list]] = {}
+        for ages, bounds, widths in profiles:
+            w_young, w_old = np.interp(young[1], ages, widths), np.interp(old[1], ages, widths)
+            if ages[-1] < old[1] or w_old <= w_young:
+                continue
+            for age, bound, width in zip(ages, bounds, widths):
+                if young[1] < age < old[1]:
+                    inside.setdefault(bound, (age, []))[1].append((width - w_young) / (w_old - w_young))
+        for bound, (age, fractions) in sorted(inside.items(), key=lambda item: item[1][0]):
+            f = float(np.clip(np.median(fractions), 0.0, 1.0))
+            filled.append((side, age, bound, young[3] + f * (old[3] - young[3]), np.maximum(young[4], old[4]),
+                           max(young[5], old[5]), np.nan))
+    return filled
+
+
+def _sibling_fill(ts: TraceSet, side: int, siblings: list[tuple[TraceSet, int]]) -> list:
+    """Traces for a flank whose control stops younger than that of the same flank of other segments of its
+    ridge system (the same plate): their isochrons carried over as relative growth of the flank's width,
+    ``width(t) = width(last) * median over siblings of w_sib(t) / w_sib(last)``.
+
+    On one plate pair the flank widths of all segments grow alike (a common Euler pole scales them by a
+    constant per segment), so this carries the plate's own changes of rate and asymmetry, which the
+    conjugate flank (the other plate) does not. Returns the new traces, youngest first, marked with the
+    age of the flank's oldest controlled trace (their support, see :func:`_conjugate_fill`).
+    """
+    own = ts.flank(side)
+    if not own:
+        return []
+    last = own[-1][1]
+    growth: dict[int, tuple[float, list]] = {}
+    for sibling, sibling_side in siblings:
+        ages, bounds, widths = _width_profile(sibling, sibling_side)
+        reference = np.interp(last, ages, widths)
+        if ages[-1] <= last or reference <= 0:
+            continue
+        for age, bound, width in zip(ages, bounds, widths):
+            if age > last:
+                growth.setdefault(bound, (age, []))[1].append(width / reference)
+    own_width = np.abs(own[-1][3] - ts.ridge[3])
+    filled = []
+    for bound, (age, ratios) in sorted(growth.items(), key=lambda item: item[1][0]):
+        widen = own_width * (float(np.median(ratios)) - 1.0)
+        filled.append((side, age, bound, own[-1][3] + side * widen, own[-1][4] + widen * sphere.EARTH_RADIUS_KM,
+                       own[-1][5], last))
+    return filled
+
+
+def _conjugate_fill(ridge: tuple, own: list, conjugate: list, flank: int, support: float) -> list:
     """Traces for a flank whose control stops younger than its conjugate's: the conjugate's isochrons
     carried over, their spacing scaled by the ratio of the two flanks' widths from the ridge to the
-    flank's oldest control (the mean asymmetry of spreading over the common history; a window of recent
+    flank's oldest trace (the mean asymmetry of spreading over the common history; a window of recent
     stages would extrapolate a transient asymmetry).
 
-    Returns the new traces, marked with the age of ``own``'s oldest controlled trace (its support); cells
+    Returns the new traces, marked with ``support``, the age of the flank's oldest controlled trace; cells
     they date are flagged as extrapolated and their uncertainty grows with the age beyond that support.
     """
     if not own or not conjugate or conjugate[-1][1] <= own[-1][1]:
@@ -403,7 +519,25 @@ def _conjugate_fill(ridge: tuple, own: list, conjugate: list, flank: int) -> lis
             continue
         widen = ratio * np.abs(tr[3] - base)
         filled.append((flank, tr[1], tr[2], own[-1][3] + flank * widen, tr[4] + widen * sphere.EARTH_RADIUS_KM, tr[5],
-                       last))
+                       support))
+    return filled
+
+
+def _filled_flanks(ts: TraceSet, sets: dict) -> list:
+    """The traces a segment's flanks lack: isochrons missing between their own traces and beyond their
+    own control, from the same flank of the other segments of its ridge system where they have them
+    (:func:`_sibling_gap_fill`, :func:`_sibling_fill`), then from the conjugate flank (:func:`_conjugate_fill`)."""
+    if ts.ridge is None:
+        return []
+    filled = []
+    for side in (-1, 1):
+        own = ts.flank(side)
+        if not own:
+            continue
+        siblings = _siblings(ts, side, sets)
+        beyond = _sibling_fill(ts, side, siblings)
+        filled += _sibling_gap_fill(ts, side, siblings) + beyond
+        filled += _conjugate_fill(ts.ridge, own + beyond, ts.flank(-side), side, own[-1][1])
     return filled
 
 
@@ -428,17 +562,19 @@ def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel
     xyz = control.xyz
     extents = _extent_samples(spec, compartments)
     spacing_rad = np.radians(spec.spacing) if spec.geographic else spec.spacing / (sphere.EARTH_RADIUS_KM * 1e3)
-    models, dropped, outliers = {}, [], []
+    sets, dropped, outliers = {}, [], []
     for label in range(1, compartments.count + 1):
         sel = np.flatnonzero(where == label)
         if not len(sel):
             continue
         local = []
-        model = _compartment_model(label, xyz[sel], control.age[sel], control.boundary[sel], control.kind[sel],
-                                   control.sigma_km[sel], extents.get(label), spacing_rad, settings, dropped, local)
+        traces = _compartment_traces(label, xyz[sel], control.age[sel], control.boundary[sel], control.kind[sel],
+                                     control.sigma_km[sel], extents.get(label), spacing_rad, settings, dropped, local)
         outliers.extend(int(sel[i]) for i in local)
-        if model is not None:
-            models[label] = model
+        if traces is not None:
+            sets[label] = traces
+    models = {label: model for label, ts in sets.items()
+              for model in [_assemble(ts, _filled_flanks(ts, sets))] if model is not None}
     if outliers:
         log.info("%d control points disagree with their isochron trace and were left out", len(outliers))
     for item in dropped:
