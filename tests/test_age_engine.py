@@ -59,6 +59,28 @@ def test_sparse_picks_accuracy(tmp_path, seed):
     assert run.empty_fraction() <= 0.01
 
 
+OTHER_BASINS = {
+    # five segments, offsets of up to 5 degrees between neighbours
+    "five-segments": SyntheticBasin(bands=[-20.0, -12.0, -6.0, 1.0, 8.0, 18.0], ridge_lon=[0.0, 3.5, -1.0, 4.0, 1.5]),
+    # rates that halve and recover, with the asymmetry swinging 20 points between stages
+    "changing-rates": SyntheticBasin(stages=[Stage(5.0, 150.0, 50.0), Stage(12.0, 60.0, 70.0), Stage(30.0, 120.0, 40.0)]),
+    # Euler pole near the basin (isochrons converge along strike) and the basin turned to high latitude
+    "near-pole": SyntheticBasin(pole=(20.0, 10.0), spin_deg=50.0),
+}
+
+
+@pytest.mark.parametrize("name", sorted(OTHER_BASINS))
+@pytest.mark.parametrize("tracks, rms, p95", [(60, 0.15, 0.3), (25, 0.3, 0.6)])
+def test_other_basin_shapes(tmp_path, name, tracks, rms, p95):
+    # the goals of the default basin hold for other layouts, seeds 1 and 2
+    for seed in (1, 2):
+        run = run_engine(tmp_path, basin=OTHER_BASINS[name], tracks=tracks, seed=seed, spacing=0.1)
+        for cells in (run.error, np.where(run.near_barrier(0.5), run.error, np.nan)):
+            s = scores(cells)
+            assert s["rms"] <= rms and s["p95"] <= p95, (seed, s)
+        assert run.empty_fraction() <= 0.01
+
+
 def _without_picks(tmp_path, basin, corridors=(1,), ages=(20.0, np.inf), region_ages=(26.0, np.inf)):
     """The dense survey with every pick of an age within ``ages`` removed from the positive flank of the given
     segments; returns the run and the cells of true age within ``region_ages`` on that flank of the first."""
