@@ -8,7 +8,8 @@ Every dated boundary (ridge, isochron line, the picks of one chron end) becomes 
 flank, resampled on a regular ``u`` axis: piecewise linear through its control, and continued along
 strike to the compartment's edge parallel to the next younger trace of its flank (the ridge is
 continued along its own end trend). Traces implying an implausible half-rate against their younger
-neighbour, or lying on the wrong side of it, are dropped.
+neighbour, or lying on the wrong side of it, are dropped; picks within pick noise of a barrier count only
+where they agree with the firm picks of their trace (:func:`_unambiguous`).
 
 A cell at (u, v) takes the two traces that bracket its v in its column, and the age
 ``t_a + f (t_b - t_a)`` with ``f`` the fraction of the great-circle distance between them (the
@@ -268,6 +269,24 @@ def _median(values: np.ndarray) -> float:
     return np.median(values)
 
 
+def _unambiguous(offset: np.ndarray, sigma_km: np.ndarray, ambiguous: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """Which points of one trace to keep among those that may lie across a barrier (``ambiguous``: within pick
+    noise of one, so they may belong to the neighbouring compartment).
+
+    An ambiguous point is kept when its offset from the younger trace agrees with the median of the
+    trace's firm points (within three pick sigmas or a tenth of that offset); a trace with no firm point
+    keeps none, and is left to the borrowed isochrons (see :func:`_filled_flanks`).
+    """
+    firm = keep & ~ambiguous
+    if not ambiguous.any():
+        return np.ones(len(offset), bool)
+    if not firm.any():
+        return ~ambiguous
+    reference = np.median(offset[firm])
+    tolerance = max(3 * np.median(sigma_km) / sphere.EARTH_RADIUS_KM, 0.1 * abs(reference))
+    return ~ambiguous | (np.abs(offset - reference) <= tolerance)
+
+
 def _plausible(offset: np.ndarray, sigma_km: np.ndarray, dt: float, settings: Settings) -> np.ndarray:
     """Which points lie beyond the younger trace at a plausible half-rate, allowing 3 sigma of noise."""
     slack = 3 * sigma_km / sphere.EARTH_RADIUS_KM
@@ -292,13 +311,25 @@ class TraceSet:
     traces: list
     #: +1 or -1: the side a ridge-less compartment's ages grow toward
     orientation: int = 1
+    profiles: dict = field(default_factory=dict, repr=False)
 
     def flank(self, side: int) -> list:
         """The controlled traces of one flank, youngest first."""
         return [tr for tr in self.traces if tr[0] == side]
 
+    def profile(self, side: int) -> tuple[np.ndarray, list, np.ndarray]:
+        """Ages, boundaries and median widths from the ridge (across-strike, along the segment) of the
+        controlled traces of one flank, ridge first (computed once)."""
+        if side not in self.profiles:
+            own = self.flank(side)
+            widths = [0.0] + [_median(np.abs(tr[3] - self.ridge[3])) for tr in own]
+            self.profiles[side] = (np.array([0.0] + [tr[1] for tr in own]), [0] + [tr[2] for tr in own],
+                                   np.array(widths))
+        return self.profiles[side]
 
-def _compartment_traces(label, xyz, age, bound, kind, sigma, extent, spacing_rad, settings, dropped, outliers):
+
+def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, spacing_rad, settings, dropped,
+                        outliers):
     """Fit the frame and draw the traces of one compartment through its control (None if it has none)."""
     ridge = kind == 0
     frame = Frame.fit(xyz[ridge]) if ridge.sum() >= 2 else None
@@ -311,6 +342,7 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, extent, spacing_rad
     if not np.isfinite(u).all():
         keep_pts = np.isfinite(u)
         u, v, age, bound, kind, sigma = u[keep_pts], v[keep_pts], age[keep_pts], bound[keep_pts], kind[keep_pts], sigma[keep_pts]
+        ambiguous = ambiguous[keep_pts]
         ridge = kind == 0
     ext_u = [u.min(), u.max()]
     if extent is not None:
@@ -354,6 +386,8 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, extent, spacing_rad
             if previous is not None:
                 keep = _plausible(offset * flank, sigma[idx], t - previous[1], settings)
             keep[keep] = _consistent(col[idx][keep], offset[keep], sigma[idx][keep])
+            if previous is not None:
+                keep &= _unambiguous(offset, sigma[idx], ambiguous[idx], keep)
             if not keep.all():
                 outliers.extend(int(i) for i in idx[~keep])
                 idx = idx[keep]
@@ -429,15 +463,6 @@ def _siblings(ts: TraceSet, side: int, sets: dict) -> list[tuple[TraceSet, int]]
     return found
 
 
-def _width_profile(ts: TraceSet, side: int) -> tuple[np.ndarray, list, np.ndarray]:
-    """Ages, boundaries and median widths from the ridge (across-strike, along the segment) of the
-    controlled traces of one flank, ridge first."""
-    own = ts.flank(side)
-    ages = np.array([0.0] + [tr[1] for tr in own])
-    widths = np.array([0.0] + [float(np.median(np.abs(tr[3] - ts.ridge[3]))) for tr in own])
-    return ages, [0] + [tr[2] for tr in own], widths
-
-
 def _sibling_gap_fill(ts: TraceSet, side: int, siblings: list[tuple[TraceSet, int]]) -> list:
     """Traces for the isochrons a flank lacks between two of its own traces that the same flank of other
     segments of its ridge system has: each placed between its neighbours at the fraction of the width
@@ -445,7 +470,7 @@ def _sibling_gap_fill(ts: TraceSet, side: int, siblings: list[tuple[TraceSet, in
     one rate across the gap. Returns the new traces; their cells stay interpolated (between own control).
     """
     own = ts.flank(side)
-    profiles = [_width_profile(sibling, sibling_side) for sibling, sibling_side in siblings]
+    profiles = [sibling.profile(sibling_side) for sibling, sibling_side in siblings]
     filled = []
     for young, old in zip([ts.ridge] + own, own):
         inside: dict[int, tuple[float, list]] = {}
@@ -479,7 +504,7 @@ def _sibling_fill(ts: TraceSet, side: int, siblings: list[tuple[TraceSet, int]])
     last = own[-1][1]
     growth: dict[int, tuple[float, list]] = {}
     for sibling, sibling_side in siblings:
-        ages, bounds, widths = _width_profile(sibling, sibling_side)
+        ages, bounds, widths = sibling.profile(sibling_side)
         reference = np.interp(last, ages, widths)
         if ages[-1] <= last or reference <= 0:
             continue
@@ -559,6 +584,10 @@ def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel
     settings : Settings
     """
     where = compartments.assign(spec, control.lon, control.lat)
+    # picks within three sigmas of a barrier may lie on its other side
+    ambiguous = control.kind == 2
+    ambiguous[ambiguous] = compartments.near_barrier(spec, control.lon[ambiguous], control.lat[ambiguous],
+                                                     3 * float(np.max(control.sigma_km[ambiguous], initial=0.0)))
     xyz = control.xyz
     extents = _extent_samples(spec, compartments)
     spacing_rad = np.radians(spec.spacing) if spec.geographic else spec.spacing / (sphere.EARTH_RADIUS_KM * 1e3)
@@ -569,7 +598,8 @@ def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel
             continue
         local = []
         traces = _compartment_traces(label, xyz[sel], control.age[sel], control.boundary[sel], control.kind[sel],
-                                     control.sigma_km[sel], extents.get(label), spacing_rad, settings, dropped, local)
+                                     control.sigma_km[sel], ambiguous[sel], extents.get(label), spacing_rad, settings,
+                                     dropped, local)
         outliers.extend(int(sel[i]) for i in local)
         if traces is not None:
             sets[label] = traces

@@ -21,6 +21,9 @@ from scipy import ndimage
 from agegrid import sphere
 
 
+#: Kilometres in a degree of latitude (mean Earth radius 6371 km).
+KM_PER_DEGREE = 6371.0 * np.pi / 180.0
+
 @dataclass
 class Compartments:
     """Compartment labels (0: outside the domain), held block by block, and the barrier geometry.
@@ -102,6 +105,21 @@ class Compartments:
             fy = (spec.region[3] - y) / spec.spacing - 0.5
             label[on_barrier] = self._side_labels(fx, fy)
         return label
+
+    def near_barrier(self, spec, lon: np.ndarray, lat: np.ndarray, km: float) -> np.ndarray:
+        """Whether each geographic point lies within about ``km`` of a barrier (its cell within that many
+        cells, counted in the grid's north-south spacing, of a barrier cell)."""
+        row, col, inside = spec.index(lon, lat)
+        cell_km = spec.spacing * (KM_PER_DEGREE if spec.geographic else 1e-3)
+        k = int(np.ceil(km / cell_km))
+        ny, nx = spec.shape
+        near = np.zeros(np.shape(lon), bool)
+        for dr in range(-k, k + 1):
+            for dc in range(-k, k + 1):
+                r, c = row + dr, col + dc
+                ok = inside & (r >= 0) & (r < ny) & (c >= 0) & (c < nx)
+                near[ok] |= _lookup(self._barrier_cells, r[ok] * nx + c[ok])[0]
+        return near
 
     def _side_labels(self, fx: np.ndarray, fy: np.ndarray) -> np.ndarray:
         """Label of the nearest free cell on the same side of the nearest barrier segment as each point.

@@ -64,6 +64,8 @@ OTHER_BASINS = {
     "five-segments": SyntheticBasin(bands=[-20.0, -12.0, -6.0, 1.0, 8.0, 18.0], ridge_lon=[0.0, 3.5, -1.0, 4.0, 1.5]),
     # rates that halve and recover, with the asymmetry swinging 20 points between stages
     "changing-rates": SyntheticBasin(stages=[Stage(5.0, 150.0, 50.0), Stage(12.0, 60.0, 70.0), Stage(30.0, 120.0, 40.0)]),
+    # five narrow segments (3 degrees): many picks lie within their noise of a fracture zone
+    "narrow-segments": SyntheticBasin(bands=[-8.0, -5.0, -2.0, 1.0, 4.0, 7.0], ridge_lon=[0.0, 1.2, 0.3, 1.5, 0.5]),
     # Euler pole near the basin (isochrons converge along strike) and the basin turned to high latitude
     "near-pole": SyntheticBasin(pole=(20.0, 10.0), spin_deg=50.0),
 }
