@@ -274,8 +274,9 @@ def _unambiguous(offset: np.ndarray, sigma_km: np.ndarray, ambiguous: np.ndarray
     noise of one, so they may belong to the neighbouring compartment).
 
     An ambiguous point is kept when its offset from the younger trace agrees with the median of the
-    trace's firm points (within three pick sigmas or a tenth of that offset); a trace with no firm point
-    keeps none, and is left to the borrowed isochrons (see :func:`_filled_flanks`).
+    trace's firm points, within three pick sigmas (common practice) or a tenth of that offset (agegrid's
+    choice: the spacing of two isochrons varies slowly along strike); a trace with no firm point keeps
+    none, and is left to the borrowed isochrons (see :func:`_filled_flanks`).
     """
     firm = keep & ~ambiguous
     if not ambiguous.any():
@@ -446,12 +447,13 @@ def _position_at(traces: list, age: float) -> np.ndarray:
     return traces[k - 1][3] + w * (traces[k][3] - traces[k - 1][3])
 
 
-def _siblings(ts: TraceSet, side: int, sets: dict) -> list[tuple[TraceSet, int]]:
-    """The other ridge segments of ``ts``'s ridge system, each with its flank on the same side as ``side``.
+def _siblings(ts: TraceSet, sets: dict) -> list[tuple[TraceSet, int]]:
+    """The other ridge segments of ``ts``'s ridge system, each with the sign that maps ``ts``'s flanks to its
+    flanks on the same side.
 
     Segments offset by transforms lie on nearly the same great circle, so the poles of their strike
     circles are close (within :data:`SIBLING_MAX_POLE_ANGLE_DEG`); the same side is the side the poles
-    point to, which may be the other's flank -1 when its frame is turned the other way.
+    point to, which is the other's opposite flank when its frame is turned the other way.
     """
     found = []
     for other in sets.values():
@@ -459,7 +461,7 @@ def _siblings(ts: TraceSet, side: int, sets: dict) -> list[tuple[TraceSet, int]]
             continue
         cos = float(ts.frame.n @ other.frame.n)
         if abs(cos) >= np.cos(np.radians(SIBLING_MAX_POLE_ANGLE_DEG)):
-            found.append((other, side if cos > 0 else -side))
+            found.append((other, 1 if cos > 0 else -1))
     return found
 
 
@@ -555,11 +557,12 @@ def _filled_flanks(ts: TraceSet, sets: dict) -> list:
     if ts.ridge is None:
         return []
     filled = []
+    segments = _siblings(ts, sets)
     for side in (-1, 1):
         own = ts.flank(side)
         if not own:
             continue
-        siblings = _siblings(ts, side, sets)
+        siblings = [(other, sign * side) for other, sign in segments]
         beyond = _sibling_fill(ts, side, siblings)
         filled += _sibling_gap_fill(ts, side, siblings) + beyond
         filled += _conjugate_fill(ts.ridge, own + beyond, ts.flank(-side), side, own[-1][1])

@@ -20,9 +20,9 @@ from scipy import ndimage
 
 from agegrid import sphere
 
+#: Kilometres in a degree of latitude on the sphere of :data:`agegrid.sphere.EARTH_RADIUS_KM`.
+KM_PER_DEGREE = sphere.EARTH_RADIUS_KM * np.pi / 180.0
 
-#: Kilometres in a degree of latitude (mean Earth radius 6371 km).
-KM_PER_DEGREE = 6371.0 * np.pi / 180.0
 
 @dataclass
 class Compartments:
