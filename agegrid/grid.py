@@ -136,13 +136,15 @@ class GridSpec:
 
     @classmethod
     def from_dataset(cls, ds) -> "GridSpec":
-        """The grid of a dataset written by agegrid (regular ``lon``/``lat`` or ``x``/``y``, a ``crs`` variable)."""
+        """The grid of a dataset written by agegrid (regular ``lon``/``lat`` or ``x``/``y``, a ``crs`` variable),
+        with the block side of its ``age`` chunks on disk when it has them."""
         geographic = "lon" in ds.dims
         x, y = (ds["lon"].values, ds["lat"].values) if geographic else (ds["x"].values, ds["y"].values)
         step = float(abs(x[1] - x[0]))
         crs = "EPSG:4326" if geographic else ds["crs"].attrs.get("crs_wkt")
+        stored = ds["age"].encoding.get("chunksizes") if "age" in ds else None
         return cls((float(x[0] - step / 2), float(x[-1] + step / 2), float(y[-1] - step / 2), float(y[0] + step / 2)),
-                   step, crs)
+                   step, crs, *([int(max(stored))] if stored else []))
 
     @classmethod
     def from_config(cls, grid) -> "GridSpec":

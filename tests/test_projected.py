@@ -85,6 +85,23 @@ def test_polar_netcdf_is_cf_and_georeferenced(builds, tmp_path):
         assert src.crs is not None and pyproj.CRS(src.crs.to_wkt()).equals(pyproj.CRS("EPSG:3031"))
 
 
+def test_retimed_polar_grid_keeps_cf_and_its_coordinates(builds, tmp_path):
+    _, polar_dir = builds
+    retimed = tmp_path / "retimed.nc"
+    assert main(["retime", str(polar_dir / "basin.nc"), "--timescale", "GTS2012", "--output", str(retimed),
+                 "--quiet"]) == 0
+    report = cf_report(retimed, tmp_path)  # IOOS compliance-checker, CF 1.8
+    assert report["high_count"] == 0, failures(report, "high")
+    with xr.open_dataset(retimed) as r, xr.open_dataset(polar_dir / "basin.nc") as b:
+        assert r["age"].encoding["chunksizes"] == (128, 128)
+        assert set(r["age"].coords) == {"x", "y", "lat", "lon"} and r["lat"].dims == ("y", "x")
+        np.testing.assert_array_equal(r["lat"].values, b["lat"].values)
+        np.testing.assert_array_equal(r["age_flag"].values, b["age_flag"].values)
+        dated = np.isfinite(b["age"].values)
+        assert np.isfinite(r["age"].values[dated]).all() and not np.isfinite(r["age"].values[~dated]).any()
+        assert np.nanmax(np.abs(r["age"].values - b["age"].values)) > 0.1  # GTS2012 differs from CK95
+
+
 def test_zarr_equals_netcdf_and_manifest_hashes(builds):
     _, polar_dir = builds
     assert store_arrays_equal(polar_dir / "basin.zarr", polar_dir / "basin.nc")

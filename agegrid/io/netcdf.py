@@ -120,32 +120,39 @@ def open_netcdf(path, **kwargs) -> xr.Dataset:
 
 
 def create_netcdf(ds: xr.Dataset, staged: Path, spec) -> tuple[dict, list[str]]:
-    """Write a dataset's structure to ``staged``: coordinates, attributes, and every in-memory variable.
+    """Write a dataset's structure to ``staged``: dimensions, attributes, coordinates and scalars.
 
-    The lazy (dask) 2-D layers are created empty, with their compression, chunking and fill value, for
-    :class:`ChunkWriter` to fill. Returns the encodings and the names of the layers left to write.
+    The 2-D layers (lazy or not) are created empty, with their compression, chunking and fill value,
+    for :class:`ChunkWriter` to fill. Returns the encodings and the names of the layers left to write.
+    (netCDF4 directly rather than ``Dataset.to_netcdf``, which imports dask's distributed scheduler, a
+    second's work, to choose a lock.)
     """
-    import dask.array as da
     import netCDF4
 
     enc = encoding(ds, spec)
-    lazy = [n for n, v in ds.variables.items() if isinstance(v.data, da.Array) and v.ndim == 2]
-    eager = ds.drop_vars([n for n in lazy if n not in ds.dims])
+    layers = [n for n, v in ds.variables.items() if v.ndim == 2]
+    coordinates = " ".join(n for n in layers if n in ds.coords)
     limit_chunk_cache()
-    eager.to_netcdf(staged, engine="netcdf4", format="NETCDF4", encoding={k: v for k, v in enc.items() if k in eager})
-    coordinates = " ".join(n for n in lazy if n in ds.coords)
-    with netCDF4.Dataset(staged, "a") as nc:
-        for name in lazy:
-            var, own = ds.variables[name], enc[name]
+    with netCDF4.Dataset(staged, "w", format="NETCDF4") as nc:
+        nc.setncatts(ds.attrs)
+        for dim, size in ds.sizes.items():
+            nc.createDimension(dim, size)
+        for name, var in ds.variables.items():
+            own = enc[name]
             fill = own.get("_FillValue")
-            created = nc.createVariable(name, np.dtype(own.get("dtype", var.dtype)), var.dims, zlib=True,
-                                        complevel=COMPRESSION_LEVEL, shuffle=True, chunksizes=own["chunksizes"],
-                                        fill_value=False if fill is None else fill)
+            dtype = np.dtype(own.get("dtype", var.dtype))
+            if name in layers:
+                created = nc.createVariable(name, dtype, var.dims, zlib=True, complevel=COMPRESSION_LEVEL,
+                                            shuffle=True, chunksizes=own["chunksizes"],
+                                            fill_value=False if fill is None else fill)
+            else:
+                created = nc.createVariable(name, dtype, var.dims, fill_value=False if fill is None else fill)
+                created[...] = np.asarray(var.values, dtype=dtype)
             attrs = dict(var.attrs)
-            if coordinates and name in ds.data_vars:
+            if coordinates and name in ds.data_vars and name in layers:
                 attrs["coordinates"] = coordinates
             created.setncatts(attrs)
-    return enc, lazy
+    return enc, layers
 
 
 class ChunkWriter:
@@ -210,18 +217,26 @@ def _deflated(part: np.ndarray, chunks: tuple[int, int], fill) -> bytes:
 def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
     """Write a dataset to a staged file beside ``target``; returns the staged path (not yet renamed).
 
-    The structure is written first (:func:`create_netcdf`); the lazy layers are then computed window by
-    window (:func:`agegrid.streaming.stream`) and their chunks written by :class:`ChunkWriter`.
-    ``extra_sinks`` receive the same blocks (COG tiles, table samples).
+    The structure is written first (:func:`create_netcdf`); the 2-D layers are then computed window by
+    window (:func:`agegrid.streaming.stream`; layers held in memory are cut in the grid's chunks) and
+    their chunks written by :class:`ChunkWriter`. ``extra_sinks`` receive the same blocks (COG tiles,
+    table samples).
     """
+    import dask.array as da
+
     from agegrid.streaming import stream
 
     staged = staging_path(target)
+    in_memory = [n for n, v in ds.variables.items() if v.ndim == 2 and not isinstance(v.data, da.Array)]
+    if in_memory:
+        ds = ds.copy()  # new variables around the same values
+        for name in in_memory:
+            ds.variables[name].data = da.from_array(ds.variables[name].data, chunks=spec.chunks)
     try:
-        enc, lazy = create_netcdf(ds, staged, spec)
-        writer = ChunkWriter(staged, spec, enc, lazy)
+        enc, layers = create_netcdf(ds, staged, spec)
+        writer = ChunkWriter(staged, spec, enc, layers)
         try:
-            stream(ds, lazy, [writer.write, *extra_sinks])
+            stream(ds, layers, [writer.write, *extra_sinks])
         finally:
             writer.close()
     except BaseException:
