@@ -78,6 +78,8 @@ FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outs
 PART_OF = {name: part for part, (wide, narrow) in PARTS.items() for name in wide + narrow}
 #: Layers the kernel returns, in order.
 LAYERS = tuple(PART_OF)
+#: Each part's layers, wide planes first.
+LAYERS_OF = {part: wide + narrow for part, (wide, narrow) in PARTS.items()}
 #: The kernel's types: float64 where retiming needs it, float32 elsewhere (integers are exact in float32).
 LAYER_DTYPES = {name: np.dtype(np.float64 if name in PARTS[PART_OF[name]][0] else np.float32) for name in LAYERS}
 #: Bytes a cell takes in a block returned by :func:`evaluate_block`, per part.
@@ -703,6 +705,14 @@ def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, 
     return buffer
 
 
+def _packed(layers: dict[str, np.ndarray], part: str, shape: tuple[int, int]) -> np.ndarray:
+    """A part's layers packed in one byte array as :func:`evaluate_block` returns them."""
+    buffer = np.empty((BLOCK_BYTES_PER_CELL[part],) + shape, dtype=np.uint8)
+    for name in LAYERS_OF[part]:
+        block_layer(buffer, name)[...] = layers[name]
+    return buffer
+
+
 def block_layer(buffer: np.ndarray, name: str) -> np.ndarray:
     """One layer of a block returned by :func:`evaluate_block` for the layer's part (a view, no copy)."""
     shape = buffer.shape[1:]
@@ -741,8 +751,8 @@ def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.Array]:
     """The age-engine layers as lazy dask arrays, chunked like the grid.
 
-    With a :class:`~agegrid.cache.BlockCache`, blocks whose inputs are unchanged are read back from it
-    and the others are computed and stored.
+    With a :class:`~agegrid.cache.BlockCache`, the age stage's blocks whose inputs are unchanged are read
+    back from the last build's file, and the others are computed.
     """
     chunks = spec.chunks
     # tasks named by one random token: dask would otherwise pickle the model and the labels to hash them
@@ -760,22 +770,18 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
             return cache.key(packed, settings, (i, j, chunks), *compartments.window(*window), block_xyz(spec, *window))
 
         blocks = [(i, j) for i in range(len(rows)) for j in range(len(cols))]
-        with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing and decompressing release the GIL
-            cache.plan(dict(zip(blocks, pool.map(key, blocks))))
+        with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing releases the GIL
+            cache.plan(dict(zip(blocks, pool.map(key, blocks))), chunks)
 
     def block(_, part, block_info=None):
         info = block_info[0]
         (r0, r1), (c0, c1) = info["array-location"]
-        key = None if cache is None else cache.keys[tuple(info["chunk-location"])]
-        if key is not None:
-            stored = cache.load(key, part)
-            if stored is not None:
-                return stored
         window = slice(r0, r1), slice(c0, c1)
-        result = evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), part)
-        if key is not None:
-            cache.store(key, result, part)
-        return result
+        if cache is not None and part == "dating":  # the motion part is cheap: always computed
+            stored = cache.load(tuple(info["chunk-location"]), window, LAYERS_OF[part])
+            if stored is not None:
+                return _packed(stored, part, (r1 - r0, c1 - c0))
+        return evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), part)
 
     # one task per block and part: the age stage computes only the dating part; the kinematic layers add the
     # motion part. Each layer is a view of its block's buffer (blockwise without concatenation), not a copy

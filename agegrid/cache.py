@@ -1,11 +1,15 @@
-"""Incremental builds: a content-addressed cache of age-engine blocks in the output directory.
+"""Incremental builds: the age-engine blocks of the last build, found again by content hash.
 
 A block's key is the SHA-256 of everything its result depends on: the agegrid version and engine
 settings, the block's position, its compartment labels and domain mask, and, for each compartment in
 the block, that compartment's frame and trace ages plus the slice of its trace table the block's cells
 fall on (with a margin). A pick moved in one corner changes the traces only near it, so only the
-blocks that see those columns get new keys and are recomputed; every other block is read back, bit
-for bit, from ``<output>/.agegrid-cache/``.
+blocks that see those columns get new keys and are recomputed.
+
+Nothing extra is written for this: the last build's NetCDF already holds every block's age-stage layers,
+chunked by block and losslessly compressed. ``<output>/.agegrid-cache/blocks.json`` records that file
+(its size and modification time) and the key of each block it holds; a block whose key is unchanged is
+read back from it, bit for bit. When NetCDF is not among the outputs, the file is kept in that folder.
 
 A whole build has a fingerprint (the build file, every input's sha256, the version); a rerun with the
 same fingerprint and its outputs in place does nothing.
@@ -14,8 +18,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import threading
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +25,10 @@ import numpy as np
 from agegrid import __version__
 
 CACHE_DIR = ".agegrid-cache"
+#: The index of the last build's blocks, in the cache folder.
+INDEX = "blocks.json"
+#: Where the last build's NetCDF is kept when NetCDF is not among the outputs.
+KEPT_NETCDF = "blocks.nc"
 MARGIN_COLUMNS = 2
 
 
@@ -56,11 +62,11 @@ def up_to_date(out_dir: Path, build_fingerprint: str) -> dict | None:
 
 
 class BlockCache:
-    """Block results keyed by content hash, stored as ``.npy`` files under the output directory.
+    """The blocks of the last build, to read back the age-stage layers of those whose key is unchanged.
 
-    Keys are computed in the driver (:meth:`plan`), so the workers that load or store blocks, threads or
-    processes, need only the folder; the counts of reused and recomputed blocks are known before the
-    computation starts.
+    Keys are computed in the driver (:meth:`plan`), so the workers that read blocks, threads or
+    processes, need only the file's path; the counts of reused and recomputed blocks are known before
+    the computation starts.
     """
 
     def __init__(self, out_dir: Path, enabled: bool = True):
@@ -68,7 +74,12 @@ class BlockCache:
         self.enabled = enabled
         self.root.mkdir(parents=True, exist_ok=True)
         self.keys: dict[tuple[int, int], str] = {}
-        self.reused = 0
+        self.source: Path | None = None
+        self.reusable: set[tuple[int, int]] = set()
+
+    @property
+    def reused(self) -> int:
+        return len(self.reusable)
 
     def key(self, packed, settings, location, labels: np.ndarray, domain: np.ndarray, xyz) -> str:
         """The content hash of one block's inputs."""
@@ -100,43 +111,58 @@ class BlockCache:
                 digest.update(np.ascontiguousarray(part).tobytes())
         return digest.hexdigest()
 
-    def plan(self, keys: dict[tuple[int, int], str]) -> None:
-        """Record the key of every block and count those whose age (the dating part) is already stored."""
+    def plan(self, keys: dict[tuple[int, int], str], chunks: tuple[int, int]) -> None:
+        """Record the key of every block, and find those the last build's file holds with the same key."""
         self.keys = keys
-        self.reused = sum(1 for k in keys.values() if self.enabled and self.path(k, "dating").is_file())
-
-    def path(self, key: str, part: str) -> Path:
-        """The file of one part (see :data:`agegrid.age_kernel.PARTS`) of the block with this key."""
-        return self.root / f"{key}-{part}.npy"
-
-    def load(self, key: str, part: str) -> np.ndarray | None:
-        """A stored part of a block, or None (also when the cache is disabled by ``--force``)."""
         if not self.enabled:
-            return None
+            return
         try:
-            return np.load(self.path(key, part), allow_pickle=False)
-        except (OSError, ValueError):
+            record = json.loads((self.root / INDEX).read_text())
+            source = self.root.parent / record["file"]
+            stat = source.stat()
+        except (OSError, ValueError, KeyError, TypeError):
+            return
+        if [stat.st_size, stat.st_mtime_ns] != record.get("stamp") or tuple(record.get("chunks", ())) != tuple(chunks):
+            return
+        previous = record.get("keys", {})
+        self.source = source
+        self.reusable = {loc for loc, key in keys.items() if previous.get(f"{loc[0]},{loc[1]}") == key}
+
+    def load(self, location: tuple[int, int], window: tuple[slice, slice], names) -> dict | None:
+        """Layers ``names`` of the block at ``location`` (cells ``window``) as the last build wrote them, or None.
+
+        Integer layers come back as float32 with NaN where the file holds its fill value, as the age
+        engine returns them.
+        """
+        if location not in self.reusable:
             return None
+        import h5py
 
-    def store(self, key: str, result: np.ndarray, part: str) -> None:
-        """Store a part of a block atomically (temporary file, then rename)."""
-        path = self.path(key, part)
-        tmp = path.with_name(f".{path.stem}.{os.getpid()}.{threading.get_ident()}.tmp")
-        with open(tmp, "wb") as fh:
-            np.save(fh, result, allow_pickle=False)
-        os.replace(tmp, path)
+        layers = {}
+        with h5py.File(self.source, "r") as nc:
+            for name in names:
+                var = nc[name]
+                values = var[window]
+                if values.dtype.kind in "iu":
+                    fill = var.attrs["_FillValue"][0]
+                    values = np.where(values == fill, np.float32(np.nan), values.astype(np.float32))
+                layers[name] = values
+        return layers
 
-    def prune(self) -> int:
-        """Remove entries the last build did not use; returns how many."""
-        used = set(self.keys.values())
-        removed = 0
-        for path in self.root.glob("*.npy"):
-            if path.stem.rsplit("-", 1)[0] not in used:
+    def write_index(self, netcdf: Path, chunks: tuple[int, int]) -> None:
+        """Record ``netcdf`` (the output's final path, once it is in place) as holding this build's blocks."""
+        from agegrid.io.atomic import atomic_write_text
+
+        stat = Path(netcdf).stat()
+        record = {"file": str(Path(netcdf).relative_to(self.root.parent)), "stamp": [stat.st_size, stat.st_mtime_ns],
+                  "chunks": list(chunks), "keys": {f"{i},{j}": key for (i, j), key in self.keys.items()}}
+        atomic_write_text(self.root / INDEX, json.dumps(record))
+
+    def prune(self, keep: Path | None = None) -> None:
+        """Remove what is not the index or ``keep`` (block files of earlier versions of the cache)."""
+        for path in self.root.iterdir():
+            if path.name != INDEX and path != keep and path.is_file():
                 path.unlink(missing_ok=True)
-                removed += 1
-        for path in self.root.glob(".*.tmp"):
-            path.unlink(missing_ok=True)
-        return removed
 
     def summary(self) -> dict:
         return {"blocks": len(self.keys), "recomputed": len(self.keys) - self.reused, "from_cache": self.reused,

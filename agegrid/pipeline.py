@@ -23,7 +23,7 @@ import xarray as xr
 from agegrid import __version__, thermal, timescale
 from agegrid.age import LAYERS, Settings, age_layers, build_age_model
 from agegrid.bathymetry import to_depth
-from agegrid.cache import BlockCache, fingerprint, up_to_date
+from agegrid.cache import KEPT_NETCDF, BlockCache, fingerprint, up_to_date
 from agegrid.compartments import build_compartments, implied_fracture_zones
 from agegrid.control import build_control
 from agegrid.errors import BadInput
@@ -386,7 +386,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
         samples = Samples(spec, _sampled_layers(config), TABLE_CELLS)
         staged: dict[Path, Path] = {}
-        cogs = None
+        cogs, staged_nc = None, None
         try:
             with scheduler(address, workers) as sched:
                 nc_target = out_dir / f"{config.name}.nc"
@@ -447,14 +447,18 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     staged[target]).items() if k != "path"}})
                 manifest["timings_s"]["report"] = stages.timings["report"]
             staged[out_dir / "manifest.json"] = _stage_text(out_dir / "manifest.json", to_json(manifest))
-            if "netcdf" not in config.output.formats:
-                staged_nc.unlink()
+            # the NetCDF holds this build's blocks for the next one: kept in the cache when it is not an output
+            blocks_nc = nc_target if "netcdf" in config.output.formats else cache.root / KEPT_NETCDF
+            staged[blocks_nc] = staged_nc
             atomic.replace_all(staged)
             staged.clear()
-            cache.prune()
+            cache.write_index(blocks_nc, spec.chunks)
+            cache.prune(keep=blocks_nc)
         finally:
             if cogs is not None:
                 cogs.close()
+            if staged_nc is not None:
+                staged_nc.unlink(missing_ok=True)
             for source in staged.values():
                 if source.is_dir():
                     import shutil

@@ -4,6 +4,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import rasterio
 import xarray as xr
 
 from agegrid import timescale
@@ -63,6 +64,33 @@ def test_removing_two_tracks_in_a_corner_rebuilds_few_blocks(tmp_path, survey):
     fresh = basin_build(tmp_path / "fresh", basin, records=records, spacing=0.1, chunk=64)
     assert main(["build", str(fresh), "--quiet", "--force"]) == 0
     assert_same(arrays(tmp_path / "incremental" / "out" / "basin.nc"), arrays(tmp_path / "fresh" / "out" / "basin.nc"))
+
+
+def test_blocks_come_from_the_last_netcdf_kept_when_not_an_output(tmp_path, survey):
+    basin, records = survey
+    build = basin_build(tmp_path, basin, records=records, spacing=0.2, chunk=64, formats=("geotiff",))
+    assert main(["build", str(build), "--quiet"]) == 0
+    out = tmp_path / "out"
+    kept = out / ".agegrid-cache" / "blocks.nc"
+    assert kept.is_file() and not (out / "basin.nc").exists()
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert str(kept) not in {entry["path"] for entry in manifest["outputs"]}
+    with rasterio.open(out / "basin_age.tif") as src:
+        first = src.read(1)
+    write_picks(tmp_path / "picks.csv", records[: len(records) - 3])  # a rebuild with three picks fewer
+    assert main(["build", str(build), "--quiet"]) == 0
+    cache = json.loads((out / "manifest.json").read_text())["cache"]
+    assert 0 < cache["from_cache"] < cache["blocks"], cache
+    with rasterio.open(out / "basin_age.tif") as src:
+        assert np.isfinite(src.read(1)).sum() == np.isfinite(first).sum()
+    # a file that is no longer the one the index names is not read: every block is computed
+    kept.write_bytes(kept.read_bytes() + b"\0")
+    write_picks(tmp_path / "picks.csv", records)
+    assert main(["build", str(build), "--quiet"]) == 0
+    cache = json.loads((out / "manifest.json").read_text())["cache"]
+    assert cache["from_cache"] == 0 and cache["recomputed"] == cache["blocks"], cache
+    with rasterio.open(out / "basin_age.tif") as src:
+        np.testing.assert_array_equal(src.read(1), first)
 
 
 def test_local_cluster_equals_local_threads(tmp_path, survey):
