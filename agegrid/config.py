@@ -191,6 +191,7 @@ class Output(Section):
     report: bool = True
     cog_compression: Literal["deflate", "zstd", "none"] = "deflate"
     cog_predictor: bool = False
+    netcdf_shares_cog_tiles: bool = True
 
     @model_validator(mode="after")
     def _predictor_needs_a_codec(self):

@@ -397,7 +397,8 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if config.output.report:  # import the plotting library while the layers are computed
                     threading.Thread(target=preload_plotting, daemon=True).start()
                 with stages("compute and write layers"), _progress(progress and sched["kind"] == "threads"):
-                    staged_nc = write_netcdf(ds, nc_target, spec, sinks)
+                    staged_nc = write_netcdf(ds, nc_target, spec, sinks,
+                                             tiles=cogs if config.output.netcdf_shares_cog_tiles else None)
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
                 if cogs is not None:

@@ -54,7 +54,11 @@ CODECS = {"deflate": Codec(8, _deflate), "zstd": Codec(50000, _zstd), "none": Co
 
 
 class CogWriter:
-    """Streams layers into tiled, compressed pyramids and assembles each into a COG staged beside its target."""
+    """Streams layers into tiled, compressed pyramids and assembles each into a COG staged beside its target.
+
+    ``on_tile``, when set, receives every full-resolution tile as encoded: (layer, tile row, tile column,
+    bytes), for a file that stores the same tiles (see :attr:`zlib_tiles`).
+    """
 
     def __init__(self, spec, targets: dict[str, Path], attrs: dict, dtypes: dict, fills: dict,
                  compression: str = "deflate", predictor: bool = False, threads: int | None = None):
@@ -62,6 +66,10 @@ class CogWriter:
         self.threads = threads or os.cpu_count() or 1
         self.pool = ThreadPoolExecutor(self.threads)
         self.pending: deque = deque()
+        self.on_tile: Callable[[str, int, int, bytes], None] | None = None
+        self.zlib_tiles = compression == "deflate" and not predictor and min(spec.shape) >= BLOCK
+        """Whether the full-resolution tiles are plain zlib streams of the values, padded with the fill to
+        ``BLOCK`` x ``BLOCK``: byte for byte what HDF5's deflate filter stores for a chunk of that shape."""
         self.layers: dict[str, _Pyramid] = {}
         try:
             for name, target in targets.items():
@@ -92,16 +100,22 @@ class CogWriter:
         layer, level, ti, tj, future = self.pending.popleft()
         data, reduced = future.result()
         layer.store(level, ti, tj, data)
+        if level == 0 and self.on_tile is not None:
+            self.on_tile(layer.name, ti, tj, data)
         if reduced is not None:
             h, w = layer.tile_extent(level, ti, tj)
             part = reduced[:-(-h // 2), :-(-w // 2)]
             for job in layer.place(level + 1, ti * BLOCK // 2, tj * BLOCK // 2, part):
                 self._submit(layer, *job)
 
-    def finish(self) -> dict[Path, Path]:
-        """Encode what is left and assemble the COGs; returns {target: staged COG}."""
+    def drain(self) -> None:
+        """Wait for every tile handed over so far to be encoded and stored."""
         while self.pending:
             self._collect_first()
+
+    def finish(self) -> dict[Path, Path]:
+        """Encode what is left and assemble the COGs; returns {target: staged COG}."""
+        self.drain()
         staged = {layer.target: staging_path(layer.target) for layer in self.layers.values()}
         try:
             with ThreadPoolExecutor(self.threads) as pool:  # the copies run in the kernel, without the GIL
@@ -134,7 +148,7 @@ class _Pyramid:
 
     def __init__(self, spec, name: str, target: Path, dtype: np.dtype, fill, attrs: dict, averaged: bool, codec: Codec,
                  predictor: bool):
-        self.target, self.dtype, self.fill = target, dtype.newbyteorder("<"), fill
+        self.name, self.target, self.dtype, self.fill = name, target, dtype.newbyteorder("<"), fill
         self.averaged, self.codec, self.predictor = averaged, codec, predictor
         self.georeferencing = _georeferencing_tags(spec, self.dtype, fill, name, attrs)
         self.shapes = [tuple(spec.shape)]

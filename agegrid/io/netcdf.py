@@ -14,6 +14,8 @@ from agegrid.io.atomic import replace, staging_path
 CONVENTIONS = "CF-1.8"
 #: Deflate level of the layers (ISA-L level 2: within ~5 % of zlib level 4's size, ~20x faster).
 COMPRESSION_LEVEL = 2
+#: Deflate level of layers stored as their COG's tiles (the COG writer's ISA-L level).
+TILE_LEVEL = 1
 #: Encoding keys carried over from a variable read back from a file (the rest are reader details).
 CHUNK_CACHE_BYTES = 4 * 2**20
 KEPT_ENCODING = ("dtype", "_FillValue", "scale_factor", "add_offset", "zlib", "complevel", "shuffle", "chunksizes")
@@ -93,8 +95,13 @@ def _lonlat_layers(spec):
     return (da.map_blocks(part, template, 0, dtype=np.float64), da.map_blocks(part, template, 1, dtype=np.float64))
 
 
-def encoding(ds: xr.Dataset, spec) -> dict:
-    """Compression, on-disk chunks and fill values, merged with each variable's own encoding."""
+def encoding(ds: xr.Dataset, spec, tiled: dict[str, tuple[int, int]] | None = None) -> dict:
+    """Compression, on-disk chunks and fill values, merged with each variable's own encoding.
+
+    Layers in ``tiled`` take chunks of the given shape, deflated at ISA-L level 1 without shuffle: the
+    tiles of their COG (see :func:`write_netcdf`).
+    """
+    tiled = tiled or {}
     enc = {}
     for name, var in ds.variables.items():
         own = {k: v for k, v in var.encoding.items() if k in KEPT_ENCODING}
@@ -105,6 +112,8 @@ def encoding(ds: xr.Dataset, spec) -> dict:
             dtype = np.dtype(own.get("dtype", var.dtype))
             fill = np.nan if dtype.kind == "f" else np.iinfo(dtype).min if dtype.kind == "i" else np.iinfo(dtype).max
             own.update({"zlib": True, "complevel": COMPRESSION_LEVEL, "shuffle": True, "chunksizes": chunks, "_FillValue": fill})
+            if name in tiled:
+                own.update({"complevel": TILE_LEVEL, "shuffle": False, "chunksizes": tiled[name]})
             if name in ("lat", "lon"):
                 own["_FillValue"] = None
         enc[name] = own
@@ -119,7 +128,8 @@ def open_netcdf(path, **kwargs) -> xr.Dataset:
     return xr.open_dataset(path, engine=NetCDF4BackendEntrypoint, **kwargs)
 
 
-def create_netcdf(ds: xr.Dataset, staged: Path, spec) -> tuple[dict, list[str]]:
+def create_netcdf(ds: xr.Dataset, staged: Path, spec, tiled: dict[str, tuple[int, int]] | None = None
+                  ) -> tuple[dict, list[str]]:
     """Write a dataset's structure to ``staged``: dimensions, attributes, coordinates and scalars.
 
     The 2-D layers (lazy or not) are created empty, with their compression, chunking and fill value,
@@ -129,7 +139,7 @@ def create_netcdf(ds: xr.Dataset, staged: Path, spec) -> tuple[dict, list[str]]:
     """
     import netCDF4
 
-    enc = encoding(ds, spec)
+    enc = encoding(ds, spec, tiled)
     layers = [n for n, v in ds.variables.items() if v.ndim == 2]
     coordinates = " ".join(n for n in layers if n in ds.coords)
     limit_chunk_cache()
@@ -142,8 +152,8 @@ def create_netcdf(ds: xr.Dataset, staged: Path, spec) -> tuple[dict, list[str]]:
             fill = own.get("_FillValue")
             dtype = np.dtype(own.get("dtype", var.dtype))
             if name in layers:
-                created = nc.createVariable(name, dtype, var.dims, zlib=True, complevel=COMPRESSION_LEVEL,
-                                            shuffle=True, chunksizes=own["chunksizes"],
+                created = nc.createVariable(name, dtype, var.dims, zlib=True, complevel=own["complevel"],
+                                            shuffle=own["shuffle"], chunksizes=own["chunksizes"],
                                             fill_value=False if fill is None else fill)
             else:
                 created = nc.createVariable(name, dtype, var.dims, fill_value=False if fill is None else fill)
@@ -169,6 +179,7 @@ class ChunkWriter:
 
         self.enc = enc
         self.chunks = spec.chunks
+        self.tiled: set[str] = set()  # layers whose chunks arrive encoded (:meth:`write_encoded`)
         self.file = h5py.File(staged, "r+")
         self.datasets = {n: self.file[n] for n in names}
         self.threads = threads or os.cpu_count() or 1
@@ -177,6 +188,8 @@ class ChunkWriter:
 
     def write(self, name: str, r0: int, c0: int, block: np.ndarray) -> None:
         """Queue a block of layer ``name`` whose top-left cell is (r0, c0), aligned on chunk edges."""
+        if name in self.tiled:
+            return
         block = _encoded(block, self.enc[name])
         rows, cols = self.chunks
         fill = self.enc[name].get("_FillValue")
@@ -186,6 +199,11 @@ class ChunkWriter:
                 self.pending.append((name, (r0 + r, c0 + c), self.pool.submit(_deflated, part, self.chunks, fill)))
         while len(self.pending) > 2 * self.threads:
             self._write_first()
+
+    def write_encoded(self, name: str, ti: int, tj: int, data: bytes) -> None:
+        """Store chunk (ti, tj) of layer ``name`` as given, already in the variable's filter encoding."""
+        rows, cols = self.enc[name]["chunksizes"]
+        self.datasets[name].id.write_direct_chunk((ti * rows, tj * cols), data)
 
     def _write_first(self) -> None:
         name, offset, packed = self.pending.pop(0)
@@ -214,13 +232,17 @@ def _deflated(part: np.ndarray, chunks: tuple[int, int], fill) -> bytes:
     return isal_zlib.compress(shuffled, COMPRESSION_LEVEL)
 
 
-def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
+def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None) -> Path:
     """Write a dataset to a staged file beside ``target``; returns the staged path (not yet renamed).
 
     The structure is written first (:func:`create_netcdf`); the 2-D layers are then computed window by
     window (:func:`agegrid.streaming.stream`; layers held in memory are cut in the grid's chunks) and
     their chunks written by :class:`ChunkWriter`. ``extra_sinks`` receive the same blocks (COG tiles,
     table samples).
+
+    ``tiles``, a :class:`~agegrid.io.geotiff.CogWriter` among the sinks whose tiles are plain zlib
+    streams, lends its full-resolution tiles to the layers it writes: they are stored as the NetCDF's
+    chunks (``BLOCK`` x ``BLOCK``, deflate without shuffle), so each is compressed once for both files.
     """
     import dask.array as da
 
@@ -232,12 +254,24 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=()) -> Path:
         ds = ds.copy()  # new variables around the same values
         for name in in_memory:
             ds.variables[name].data = da.from_array(ds.variables[name].data, chunks=spec.chunks)
+    tiled = {}
+    if tiles is not None and tiles.zlib_tiles:
+        from agegrid.io.geotiff import BLOCK
+
+        tiled = {name: (BLOCK, BLOCK) for name in tiles.layers if name in ds.variables}
     try:
-        enc, layers = create_netcdf(ds, staged, spec)
+        enc, layers = create_netcdf(ds, staged, spec, tiled)
         writer = ChunkWriter(staged, spec, enc, layers)
+        if tiled:
+            writer.tiled = set(tiled)
+            tiles.on_tile = writer.write_encoded
         try:
             stream(ds, layers, [writer.write, *extra_sinks])
+            if tiled:
+                tiles.drain()
         finally:
+            if tiled:
+                tiles.on_tile = None
             writer.close()
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
