@@ -14,7 +14,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from numba import vectorize
+from numba import njit
 from scipy.special import erfc, erfinv
 
 SECONDS_PER_MYR = 1e6 * 365.25 * 86400.0
@@ -29,29 +29,52 @@ def _age(age) -> np.ndarray:
     return np.where(age >= 0, age, np.nan)
 
 
-# The closed-form laws below are compiled ufuncs: one branch per cell, no temporaries (2.5x faster than
-# both branches in numpy over a 512 x 512 block). Ages below zero or NaN give NaN.
-@vectorize(["float64(float64, float64, float64, float64, float64, float64, float64)"], cache=True)
-def _root_then_exponential(t, ridge, coefficient, switch, asymptote, amplitude, decay):
+def _root_then_exponential(age, ridge, coefficient, switch, asymptote, amplitude, decay) -> np.ndarray:
     """The empirical depth form: ridge + coefficient sqrt(t) before ``switch``, asymptote - amplitude
-    exp(-decay t) from there on."""
-    if not t >= 0.0:
-        return math.nan
-    if t < switch:
-        return ridge + coefficient * math.sqrt(t)
-    return asymptote - amplitude * math.exp(-decay * t)
+    exp(-decay t) from there on; NaN for negative or missing ages."""
+    return _cell_by_cell(_depth_law, age, ridge, coefficient, switch, asymptote, amplitude, decay)
 
 
-@vectorize(["float64(float64, float64, float64, float64, float64, float64, boolean)"], cache=True)
-def _inverse_root_then_exponential(t, coefficient, switch, asymptote, amplitude, decay, through_switch):
+def _inverse_root_then_exponential(age, coefficient, switch, asymptote, amplitude, decay, through_switch
+                                   ) -> np.ndarray:
     """The empirical heat-flow form: coefficient / sqrt(t) before ``switch`` (and at it when
     ``through_switch``), asymptote + amplitude exp(-decay t) after; t clamped to MIN_HEAT_FLOW_AGE_MYR."""
-    if not t >= 0.0:
-        return math.nan
-    t = max(t, MIN_HEAT_FLOW_AGE_MYR)
-    if t < switch or (through_switch and t == switch):
-        return coefficient / math.sqrt(t)
-    return asymptote + amplitude * math.exp(-decay * t)
+    return _cell_by_cell(_heat_flow_law, age, coefficient, switch, asymptote, amplitude, decay, through_switch)
+
+
+def _cell_by_cell(law, age, *parameters) -> np.ndarray:
+    """A compiled law over every cell of ``age`` (any shape), one branch per cell and no temporaries
+    (2.5x faster than both branches in numpy over a 512 x 512 block)."""
+    age = np.asarray(age, dtype=float)
+    out = np.empty(age.shape)
+    law(np.ascontiguousarray(age).reshape(-1), out.reshape(-1), *(float(p) for p in parameters))
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _depth_law(age, out, ridge, coefficient, switch, asymptote, amplitude, decay):
+    for i in range(age.size):
+        t = age[i]
+        if not t >= 0.0:
+            out[i] = np.nan
+        elif t < switch:
+            out[i] = ridge + coefficient * math.sqrt(t)
+        else:
+            out[i] = asymptote - amplitude * math.exp(-decay * t)
+
+
+@njit(cache=True, nogil=True)
+def _heat_flow_law(age, out, coefficient, switch, asymptote, amplitude, decay, through_switch):
+    for i in range(age.size):
+        t = age[i]
+        if not t >= 0.0:
+            out[i] = np.nan
+            continue
+        t = max(t, MIN_HEAT_FLOW_AGE_MYR)
+        if t < switch or (through_switch and t == switch):
+            out[i] = coefficient / math.sqrt(t)
+        else:
+            out[i] = asymptote + amplitude * math.exp(-decay * t)
 
 
 @dataclass(frozen=True)
