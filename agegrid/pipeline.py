@@ -11,7 +11,6 @@ import csv
 import io
 import logging
 import sys
-import threading
 import time
 from datetime import datetime, timezone
 from pathlib import Path
@@ -43,7 +42,7 @@ from agegrid.lock import BuildLock
 from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
 from agegrid.notices import CAUTION
 from agegrid.qa import check_picks
-from agegrid.report import build_report, preload_plotting
+from agegrid.report import build_report
 from agegrid.residual import binned_statistics, fit_sqrt_age, residual
 from agegrid.sediment import lithology_from_config
 from agegrid.streaming import Samples
@@ -394,8 +393,6 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if "geotiff" in config.output.formats:
                     cogs = _cog_writer(config, ds, spec, attrs, out_dir)
                     sinks.append(cogs.write)
-                if config.output.report:  # import the plotting library while the layers are computed
-                    threading.Thread(target=preload_plotting, daemon=True).start()
                 with stages("compute and write layers"), _progress(progress and sched["kind"] == "threads"):
                     staged_nc = write_netcdf(ds, nc_target, spec, sinks,
                                              tiles=cogs if config.output.netcdf_shares_cog_tiles else None)

@@ -30,11 +30,6 @@ def _matplotlib():
     return plt
 
 
-def preload_plotting() -> None:
-    """Import the plotting library ahead of the report (a build runs this on a background thread)."""
-    _matplotlib()
-
-
 def _png(fig) -> str:
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", dpi=110)  # the figures' own layout: a tight box would draw them twice
