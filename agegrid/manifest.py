@@ -33,11 +33,45 @@ def describe_file(path: Path) -> dict:
     return {"path": str(path), "bytes": path.stat().st_size, "sha256": sha256(path)}
 
 
+class FileDescriptions:
+    """Size and sha256 of files, each hashed on a background thread from the moment it is complete.
+
+    A build hands over each staged output as soon as it is written (the NetCDF while the COGs are
+    assembled and the tables made); :meth:`describe` waits for those and hashes the rest.
+    """
+
+    def __init__(self, threads: int = 2):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self.pool = ThreadPoolExecutor(threads)
+        self.futures: dict = {}
+
+    def start(self, path: Path) -> None:
+        """Begin hashing a complete file."""
+        self.futures[Path(path)] = self.pool.submit(describe_file, Path(path))
+
+    def describe(self, staged: dict[Path, Path]) -> list[dict]:
+        """Size and sha256 of each staged output ({target: staged}), under its target's path."""
+        for source in staged.values():
+            if Path(source).exists() and Path(source) not in self.futures:
+                self.start(source)
+        return [{"path": str(target), **{k: v for k, v in self.futures[Path(source)].result().items() if k != "path"}}
+                for target, source in staged.items() if Path(source) in self.futures]
+
+    def close(self) -> None:
+        self.pool.shutdown(wait=True, cancel_futures=True)
+
+
 def versions() -> dict:
+    """Versions of Python, the packages in :data:`PACKAGES` and GDAL (an imported module's ``__version__``,
+    else its installed metadata, which takes milliseconds a package to find)."""
+    import sys
+
     out = {"python": platform.python_version()}
     for name in PACKAGES:
+        module = sys.modules.get(name)
         try:
-            out[name] = version(name)
+            out[name] = str(getattr(module, "__version__", None) or version(name))
         except PackageNotFoundError:
             out[name] = None
     try:

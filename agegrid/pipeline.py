@@ -39,7 +39,7 @@ from agegrid.io.profiles import read_profiles
 from agegrid.kinematics import RATE_LAYERS, rate_table
 from agegrid.magnetic import MagneticSettings, anomaly_layer
 from agegrid.lock import BuildLock
-from agegrid.manifest import describe_file, peak_memory_mb, sha256, to_json, versions
+from agegrid.manifest import FileDescriptions, describe_file, peak_memory_mb, sha256, to_json, versions
 from agegrid.notices import CAUTION
 from agegrid.qa import check_picks
 from agegrid.report import build_report
@@ -291,16 +291,6 @@ def _cog_writer(config, ds: xr.Dataset, spec, attrs: dict, out_dir: Path) -> Cog
                      config.output.cog_compression, config.output.cog_predictor)
 
 
-def _describe_outputs(staged: dict[Path, Path], threads: int = 4) -> list[dict]:
-    """Size and sha256 of each staged output under its target's path (hashed on several threads)."""
-    from concurrent.futures import ThreadPoolExecutor
-
-    pairs = [(t, s) for t, s in staged.items() if s.exists()]
-    with ThreadPoolExecutor(threads) as pool:
-        described = list(pool.map(describe_file, [s for _, s in pairs]))
-    return [{"path": str(t), **{k: v for k, v in d.items() if k != "path"}} for (t, _), d in zip(pairs, described)]
-
-
 def _depth_tables(config, sample: xr.Dataset, stride: int) -> tuple[str, dict]:
     """The age-binned residual statistics CSV and the sqrt(age) fit of corrected depth, from the samples."""
     names = ["age", "observed_depth", "sediment_correction"] + [f"residual_{m}" for m in config.depth.models]
@@ -386,6 +376,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         samples = Samples(spec, _sampled_layers(config), TABLE_CELLS)
         staged: dict[Path, Path] = {}
         cogs, staged_nc = None, None
+        hashes = FileDescriptions()
         try:
             with scheduler(address, workers) as sched:
                 nc_target = out_dir / f"{config.name}.nc"
@@ -398,9 +389,13 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                                              tiles=cogs if config.output.netcdf_shares_cog_tiles else None)
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
+                    hashes.start(staged_nc)  # while the COGs are assembled and the tables made
                 if cogs is not None:
                     with stages("assemble geotiff"):
-                        staged.update(cogs.finish())
+                        staged_cogs = cogs.finish()
+                    staged.update(staged_cogs)
+                    for path in staged_cogs.values():
+                        hashes.start(path)
                 sample = samples.dataset(ds)
                 with stages("depth statistics"):
                     table, fit = _depth_tables(config, sample, samples.stride)
@@ -424,7 +419,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if config.inputs.bathymetry:
                     target = out_dir / f"{config.name}_depth_stats.csv"
                     staged[target] = _stage_text(target, table)
-            outputs = _describe_outputs(staged)
+            outputs = hashes.describe(staged)
             manifest = {
                 "agegrid": __version__, "name": config.name,
                 "built": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -453,6 +448,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
             cache.write_index(blocks_nc, spec.chunks)
             cache.prune(keep=blocks_nc)
         finally:
+            hashes.close()
             if cogs is not None:
                 cogs.close()
             if staged_nc is not None:
