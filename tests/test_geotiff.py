@@ -21,8 +21,8 @@ def layers(shape, seed=5):
     return {"age": age, "age_flag": flag}
 
 
-def write_cogs(tmp_path, block, compression="deflate", predictor=False, tag=""):
-    spec = GridSpec(REGION, SPACING, chunk=256)
+def write_cogs(tmp_path, block, compression="deflate", predictor=False, tag="", chunk=256):
+    spec = GridSpec(REGION, SPACING, chunk=chunk)
     values = layers(spec.shape)
     targets = {n: tmp_path / f"{n}{tag}.tif" for n in values}
     attrs = {"age": {"long_name": "crustal age", "units": "Myr"},
@@ -72,6 +72,19 @@ def test_overviews_read_by_gdal_are_means_of_valid_cells(tmp_path):
                 assert np.allclose(got, expect, rtol=1e-6, equal_nan=True)
             else:
                 assert np.array_equal(got, expect)
+
+
+@pytest.mark.parametrize("chunk, side", [(512, 512), (1024, 512), (768, 256), (300, 256)])
+def test_tiles_are_the_largest_side_that_divides_the_grid_blocks(tmp_path, chunk, side):
+    from rio_cogeo.cogeo import cog_validate
+
+    paths, values = write_cogs(tmp_path, (chunk, chunk), chunk=chunk)
+    valid, errors, warnings = cog_validate(str(paths["age"]), quiet=True)
+    assert valid and not warnings, (errors, warnings)
+    with rasterio.open(paths["age"]) as src:  # GDAL's view of the tiling
+        assert src.block_shapes == [(side, side)]
+        assert src.overviews(1) == ([2] if side == 512 else [2, 4])  # halved until one tile holds it
+        assert np.array_equal(src.read(1), values["age"], equal_nan=True)
 
 
 def test_file_does_not_depend_on_how_the_layer_arrived(tmp_path):

@@ -1,6 +1,6 @@
 """Cloud-Optimized GeoTIFFs, one per output layer, written tile by tile as the layers stream past.
 
-Every block a layer hands over is cut into 256 x 256 tiles. A finished tile is encoded on a worker
+Every block a layer hands over is cut into square tiles (512 or 256 cells a side, see :func:`tile_side`). A finished tile is encoded on a worker
 thread (the TIFF predictor if asked, then the codec, both releasing the GIL) and appended to its level's
 spill file beside the target, and its 2 x 2 reduction fills a quarter of a tile of the next overview
 level: the mean of the valid cells for real values, the top-left cell for codes and counts. So the
@@ -25,7 +25,14 @@ from rasterio.io import MemoryFile
 from agegrid.io import tiff
 from agegrid.io.atomic import staging_path
 
-BLOCK = 256
+#: COG tile sides, largest first: the largest that divides the grid's block side is used (GDAL's COG driver
+#: writes 512 by default), so every block is cut into whole tiles; 256 when neither divides it.
+TILE_SIDES = (512, 256)
+
+
+def tile_side(spec) -> int:
+    """The COG tile side for a grid: the largest of :data:`TILE_SIDES` that divides its block side."""
+    return next((side for side in TILE_SIDES if spec.chunk % side == 0), TILE_SIDES[-1])
 
 
 class Codec(NamedTuple):
@@ -67,15 +74,16 @@ class CogWriter:
         self.pool = ThreadPoolExecutor(self.threads)
         self.pending: deque = deque()
         self.on_tile: Callable[[str, int, int, bytes], None] | None = None
-        self.zlib_tiles = compression == "deflate" and not predictor and min(spec.shape) >= BLOCK
+        self.tile = tile_side(spec)
+        self.zlib_tiles = compression == "deflate" and not predictor and min(spec.shape) >= self.tile
         """Whether the full-resolution tiles are plain zlib streams of the values, padded with the fill to
-        ``BLOCK`` x ``BLOCK``: byte for byte what HDF5's deflate filter stores for a chunk of that shape."""
+        ``tile`` x ``tile``: byte for byte what HDF5's deflate filter stores for a chunk of that shape."""
         self.layers: dict[str, _Pyramid] = {}
         try:
             for name, target in targets.items():
                 self.layers[name] = _Pyramid(spec, name, target, np.dtype(dtypes[name]), fills[name], attrs[name],
                                              averaged=not _is_code(attrs[name]), codec=self.codec,
-                                             predictor=predictor)
+                                             predictor=predictor, tile=self.tile)
         except BaseException:
             self.close()
             raise
@@ -105,7 +113,7 @@ class CogWriter:
         if reduced is not None:
             h, w = layer.tile_extent(level, ti, tj)
             part = reduced[:-(-h // 2), :-(-w // 2)]
-            for job in layer.place(level + 1, ti * BLOCK // 2, tj * BLOCK // 2, part):
+            for job in layer.place(level + 1, ti * self.tile // 2, tj * self.tile // 2, part):
                 self._submit(layer, *job)
 
     def drain(self) -> None:
@@ -147,17 +155,18 @@ class _Pyramid:
     """One layer's levels: unfinished tiles, a spill file of encoded tiles per level, and the TIFF tags."""
 
     def __init__(self, spec, name: str, target: Path, dtype: np.dtype, fill, attrs: dict, averaged: bool, codec: Codec,
-                 predictor: bool):
+                 predictor: bool, tile: int):
         self.name, self.target, self.dtype, self.fill = name, target, dtype.newbyteorder("<"), fill
+        self.tile = tile
         self.averaged, self.codec, self.predictor = averaged, codec, predictor
         self.georeferencing = _georeferencing_tags(spec, self.dtype, fill, name, attrs)
         self.shapes = [tuple(spec.shape)]
-        while max(self.shapes[-1]) > BLOCK:  # halve until the overview fits one tile
+        while max(self.shapes[-1]) > self.tile:  # halve until the overview fits one tile
             self.shapes.append(tuple(-(-n // 2) for n in self.shapes[-1]))
         self.open: list[dict] = [{} for _ in self.shapes]
         self.spills, self.files, self.offsets, self.counts = [], [], [], []
         for shape in self.shapes:
-            tiles = -(-shape[0] // BLOCK) * -(-shape[1] // BLOCK)
+            tiles = -(-shape[0] // self.tile) * -(-shape[1] // self.tile)
             self.offsets.append(np.full(tiles, -1, dtype=np.int64))
             self.counts.append(np.zeros(tiles, dtype=np.int64))
             self.spills.append(staging_path(target.with_suffix(f".level{len(self.spills)}.tiles")))
@@ -166,23 +175,23 @@ class _Pyramid:
     def tile_extent(self, level: int, ti: int, tj: int) -> tuple[int, int]:
         """Rows and columns of tile (ti, tj) of ``level`` inside the image."""
         ny, nx = self.shapes[level]
-        return min(BLOCK, ny - ti * BLOCK), min(BLOCK, nx - tj * BLOCK)
+        return min(self.tile, ny - ti * self.tile), min(self.tile, nx - tj * self.tile)
 
     def place(self, level: int, r0: int, c0: int, values: np.ndarray):
         """Copy ``values`` (top-left cell at (r0, c0) of ``level``) into its tiles; yields the finished ones
         as (level, ti, tj, tile)."""
         h, w = values.shape
-        for ti in range(r0 // BLOCK, (r0 + h - 1) // BLOCK + 1):
-            for tj in range(c0 // BLOCK, (c0 + w - 1) // BLOCK + 1):
-                top, left = ti * BLOCK, tj * BLOCK
-                rs = slice(max(r0, top), min(r0 + h, top + BLOCK))
-                cs = slice(max(c0, left), min(c0 + w, left + BLOCK))
-                if rs.stop - rs.start == cs.stop - cs.start == BLOCK:  # a whole tile: no copy here
+        for ti in range(r0 // self.tile, (r0 + h - 1) // self.tile + 1):
+            for tj in range(c0 // self.tile, (c0 + w - 1) // self.tile + 1):
+                top, left = ti * self.tile, tj * self.tile
+                rs = slice(max(r0, top), min(r0 + h, top + self.tile))
+                cs = slice(max(c0, left), min(c0 + w, left + self.tile))
+                if rs.stop - rs.start == cs.stop - cs.start == self.tile:  # a whole tile: no copy here
                     yield level, ti, tj, values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
                     continue
                 entry = self.open[level].get((ti, tj))
                 if entry is None:
-                    entry = self.open[level][(ti, tj)] = [np.full((BLOCK, BLOCK), self.fill, dtype=self.dtype), 0]
+                    entry = self.open[level][(ti, tj)] = [np.full((self.tile, self.tile), self.fill, dtype=self.dtype), 0]
                 entry[0][rs.start - top:rs.stop - top, cs.start - left:cs.stop - left] = \
                     values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
                 entry[1] += (rs.stop - rs.start) * (cs.stop - cs.start)
@@ -205,7 +214,7 @@ class _Pyramid:
 
     def store(self, level: int, ti: int, tj: int, data: bytes) -> None:
         """Append an encoded tile to its level's spill file."""
-        k = ti * -(-self.shapes[level][1] // BLOCK) + tj
+        k = ti * -(-self.shapes[level][1] // self.tile) + tj
         self.offsets[level][k] = self.files[level].tell()
         self.counts[level][k] = len(data)
         self.files[level].write(data)
@@ -226,7 +235,7 @@ class _Pyramid:
                 tiff.BITS_PER_SAMPLE: tiff.Tag.of(S, 8 * self.dtype.itemsize),
                 tiff.COMPRESSION: tiff.Tag.of(S, self.codec.code), tiff.PHOTOMETRIC: tiff.Tag.of(S, 1),
                 tiff.SAMPLES_PER_PIXEL: tiff.Tag.of(S, 1), tiff.PLANAR_CONFIGURATION: tiff.Tag.of(S, 1),
-                tiff.TILE_WIDTH: tiff.Tag.of(S, BLOCK), tiff.TILE_LENGTH: tiff.Tag.of(S, BLOCK),
+                tiff.TILE_WIDTH: tiff.Tag.of(S, self.tile), tiff.TILE_LENGTH: tiff.Tag.of(S, self.tile),
                 tiff.SAMPLE_FORMAT: tiff.Tag.of(S, tiff.SAMPLE_FORMATS[self.dtype.kind])}
         if self.predictor:  # TIFF's floating-point predictor (3) for reals, horizontal differencing (2) for integers
             tags[tiff.PREDICTOR] = tiff.Tag.of(S, 3 if self.dtype.kind == "f" else 2)

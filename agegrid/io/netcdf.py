@@ -242,7 +242,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None)
 
     ``tiles``, a :class:`~agegrid.io.geotiff.CogWriter` among the sinks whose tiles are plain zlib
     streams, lends its full-resolution tiles to the layers it writes: they are stored as the NetCDF's
-    chunks (``BLOCK`` x ``BLOCK``, deflate without shuffle), so each is compressed once for both files.
+    chunks (the tiles' shape, deflate without shuffle), so each is compressed once for both files.
     """
     import dask.array as da
 
@@ -256,9 +256,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None)
             ds.variables[name].data = da.from_array(ds.variables[name].data, chunks=spec.chunks)
     tiled = {}
     if tiles is not None and tiles.zlib_tiles:
-        from agegrid.io.geotiff import BLOCK
-
-        tiled = {name: (BLOCK, BLOCK) for name in tiles.layers if name in ds.variables}
+        tiled = {name: (tiles.tile, tiles.tile) for name in tiles.layers if name in ds.variables}
     try:
         enc, layers = create_netcdf(ds, staged, spec, tiled)
         writer = ChunkWriter(staged, spec, enc, layers)
