@@ -38,16 +38,23 @@ def stream(ds: xr.Dataset, names: list[str], sinks: list[Sink], window_mb: float
     """Compute the lazy 2-D variables ``names`` of ``ds`` window by window and feed every block to ``sinks``.
 
     Blocks are handed over as dask computes them (no window-sized copies); layers sharing a computation
-    share its tasks, so the age engine runs once per block for all its layers.
+    share its tasks, so the age engine runs once per block for all its layers. The task graph of the
+    whole grid is built once; each window runs the part of it that its blocks need, on the active dask
+    scheduler (threads, or a distributed client).
     """
-    import dask
+    from dask.base import get_scheduler
+    from dask.optimization import cull
+    from dask.threaded import get as threaded_get
 
     if not names:
         return
     arrays = [ds.variables[n].data for n in names]
     chunks = arrays[0].chunks
     arrays = [a if a.chunks == chunks else a.rechunk(chunks) for a in arrays]
-    blocks = [a.to_delayed(optimize_graph=False) for a in arrays]
+    graph: dict = {}
+    for a in arrays:
+        graph.update(a.__dask_graph__())
+    run = get_scheduler() or threaded_get
     r_edges, c_edges = np.cumsum((0,) + chunks[0]), np.cumsum((0,) + chunks[1])
     per_cell = sum(a.dtype.itemsize for a in arrays)
 
@@ -62,7 +69,8 @@ def stream(ds: xr.Dataset, names: list[str], sinks: list[Sink], window_mb: float
     with ThreadPoolExecutor(1) as writer:
         pending = None
         for i, columns in windows(chunks, per_cell, window_mb):
-            values = dask.compute(*[b[i, j] for b in blocks for j in columns])
+            keys = [(a.name, i, j) for a in arrays for j in columns]
+            values = run(cull(graph, keys)[0], keys)
             if pending is not None:
                 pending.result()
             pending = writer.submit(consume, i, columns, values)
