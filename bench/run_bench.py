@@ -7,7 +7,9 @@ alternately `repeats` times each, medians; accuracy of both against the true age
 within 0.5 degrees of a fracture zone); then whole builds (`agegrid build`, three cooling models, bathymetry, NetCDF and a COG per layer)
 in a fresh process each, with per-stage timings from the manifest and the process's peak memory: the
 wall time of the command (module imports included) and the layers-and-files time (the manifest's total:
-inputs read to every layer written as NetCDF and COG, with the tables; the report is timed apart).
+inputs read to every layer written as NetCDF and COG, with the tables; the report is timed apart); and
+the same builds run in this process after a warm-up, alternately with griddata, as the age stage is
+measured (the like-for-like ratio: no imports, numba start-up or first allocations on either side).
 
     python bench/run_bench.py [--sizes 0.1,0.025] [--repeats 5] [--builds 3] [--large] [--magnetic]
 
@@ -128,6 +130,28 @@ def whole_build(folder: Path, runs: int) -> dict:
             "noop_rerun_s": round(statistics.median(noop), 3), "noop_over_build": round(statistics.median(noop) / wall, 3)}
 
 
+def steady_builds(folder: Path, griddata, repeats: int) -> dict:
+    """Whole builds in this process after one warm-up, alternated with griddata as the age stage is: the
+    like-for-like ratio (both warm, both under the same load). The layers-and-files time is the
+    manifest's total; the report is left out."""
+    from agegrid.config import load_build_file
+    from agegrid.pipeline import build
+
+    config = load_build_file(folder / "build.toml")
+    config = config.model_copy(update={"output": config.output.model_copy(update={"report": False})})
+    build(config, force=True, progress=False)  # imports, numba's start-up, first allocations
+    builds, grids = [], []
+    for _ in range(repeats):
+        builds.append(build(config, force=True, progress=False)["timings_s"]["total"])
+        start = time.perf_counter()
+        griddata()
+        grids.append(time.perf_counter() - start)
+    t_build, t_grid = statistics.median(builds), statistics.median(grids)
+    return {"layers_and_files_s": round(t_build, 3), "runs_s": [round(t, 3) for t in builds],
+            "griddata_s": round(t_grid, 3), "griddata_runs_s": [round(t, 3) for t in grids],
+            "over_griddata": round(t_build / t_grid, 2)}
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--sizes", default="0.1,0.025", help="grid spacings in degrees")
@@ -167,6 +191,7 @@ def main(argv=None) -> int:
             (folder / "build.toml").write_text(text)
             write_bathymetry(folder / "bathymetry.nc", basin, spec)
             build = whole_build(folder, args.builds)
+            steady = steady_builds(folder, lambda: generic(spec, basin, records), args.repeats)
             row = {
                 "spacing_deg": spacing, "cells": spec.size, "picks": len(records),
                 "cog_compression": args.cog_compression,
@@ -175,6 +200,7 @@ def main(argv=None) -> int:
                 "age_over_griddata": round(t_age / t_gen, 2),
                 "build": build, "build_over_griddata": round(build["wall_s"] / t_gen, 2),
                 "layers_and_files_over_griddata": round(build["layers_and_files_s"] / t_gen, 2),
+                "steady_build": steady,
                 "accuracy_agegrid": {"all": score(age - truth), "near_fz": score(age - truth, near),
                                      "empty_percent": round(100 * float((np.isfinite(truth) & ~np.isfinite(age)).sum()
                                                                          / np.isfinite(truth).sum()), 3)},
@@ -190,6 +216,8 @@ def main(argv=None) -> int:
             print(f"{'':>16}layers and files (inputs to every layer in NetCDF and COG, tables; no report, no "
                   f"start-up) {build['layers_and_files_s']:.2f} s (x{row['layers_and_files_over_griddata']:.1f} "
                   f"griddata)")
+            print(f"{'':>16}the same in one process, warm, alternated with griddata: {steady['layers_and_files_s']:.2f} s "
+                  f"against {steady['griddata_s']:.3f} s (x{steady['over_griddata']:.1f} griddata)")
             print(f"{'':>16}build stages (median s): {build['stages_s']}")
             print(f"{'':>16}no-op rerun {build['noop_rerun_s']:.2f} s = {build['noop_over_build']:.2f} of a build")
         for small, big in zip(results, results[1:]):
