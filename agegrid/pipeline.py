@@ -43,7 +43,7 @@ from agegrid.manifest import FileDescriptions, describe_file, peak_memory_mb, sh
 from agegrid.notices import CAUTION
 from agegrid.qa import check_picks
 from agegrid.report import build_report
-from agegrid.residual import binned_statistics, fit_sqrt_age, residual
+from agegrid.residual import AgeBins, fit_sqrt_age, residual
 from agegrid.sediment import lithology_from_config
 from agegrid.streaming import Samples
 from agegrid.variables import attributes
@@ -297,9 +297,10 @@ def _depth_tables(config, sample: xr.Dataset, stride: int) -> tuple[str, dict]:
     layers = {n: sample[n].values.ravel() for n in names if n in sample}
     age = layers["age"]
     rows = []
+    bins = AgeBins(age, config.depth.age_bin_myr)
     for name in config.depth.models:
         if f"residual_{name}" in layers:
-            for row in binned_statistics(age, layers[f"residual_{name}"], config.depth.age_bin_myr):
+            for row in bins.statistics(layers[f"residual_{name}"]):
                 rows.append({"model": name, **row, "cells": row["cells"] * stride**2, "sampled_every": stride})
     buffer = io.StringIO()
     writer = csv.DictWriter(buffer, ["model", "age_from_myr", "age_to_myr", "cells", "median_m", "iqr_m",

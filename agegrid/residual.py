@@ -9,21 +9,37 @@ def residual(predicted, corrected):
     return predicted - corrected
 
 
+class AgeBins:
+    """Cells grouped by age bin once (one sort), for the statistics of several layers over the same ages."""
+
+    def __init__(self, age: np.ndarray, bin_myr: float):
+        age = np.asarray(age).ravel()
+        cells = np.flatnonzero(np.isfinite(age))
+        bins = np.floor(age[cells] / bin_myr).astype(np.int64)
+        if len(bins) and bins.max() < np.iinfo(np.int16).max:
+            bins = bins.astype(np.int16)  # numpy sorts 16-bit integers by radix
+        order = np.argsort(bins, kind="stable")
+        self.cells, self.bin_myr = cells[order], bin_myr
+        self.numbers, self.starts = np.unique(bins[order], return_index=True)
+
+    def statistics(self, values: np.ndarray) -> list[dict]:
+        """Cell count, median and interquartile range of the finite ``values`` per age bin that has any."""
+        grouped = np.asarray(values).ravel()[self.cells]
+        rows = []
+        for number, start, stop in zip(self.numbers, self.starts, np.r_[self.starts[1:], len(grouped)]):
+            part = grouped[start:stop]
+            part = part[np.isfinite(part)]
+            if part.size:
+                q1, med, q3 = np.percentile(part, [25, 50, 75])
+                lo = float(number * self.bin_myr)
+                rows.append({"age_from_myr": lo, "age_to_myr": float(lo + self.bin_myr), "cells": int(part.size),
+                             "median_m": float(med), "iqr_m": float(q3 - q1)})
+        return rows
+
+
 def binned_statistics(age: np.ndarray, values: np.ndarray, bin_myr: float) -> list[dict]:
     """Cell count, median and interquartile range of ``values`` per age bin."""
-    ok = np.isfinite(age) & np.isfinite(values)
-    age, values = age[ok], values[ok]
-    rows = []
-    if not len(age):
-        return rows
-    top = np.ceil(age.max() / bin_myr) * bin_myr
-    for lo in np.arange(0.0, top, bin_myr):
-        sel = (age >= lo) & (age < lo + bin_myr)
-        if sel.any():
-            q1, med, q3 = np.percentile(values[sel], [25, 50, 75])
-            rows.append({"age_from_myr": float(lo), "age_to_myr": float(lo + bin_myr), "cells": int(sel.sum()),
-                         "median_m": float(med), "iqr_m": float(q3 - q1)})
-    return rows
+    return AgeBins(age, bin_myr).statistics(values)
 
 
 def fit_sqrt_age(age: np.ndarray, depth: np.ndarray, age_range: tuple[float, float]) -> dict | None:
