@@ -53,7 +53,7 @@ import numpy as np
 from numba import njit
 
 from agegrid import sphere
-from agegrid.age_kernel import DATING, MOTION, PARTS
+from agegrid.age_kernel import DATING, MOTION, PARTS, column_span
 
 log = logging.getLogger("agegrid")
 
@@ -767,7 +767,10 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
         def key(ij):
             i, j = ij
             window = (slice(r_edges[i], r_edges[i + 1]), slice(c_edges[j], c_edges[j + 1]))
-            return cache.key(packed, settings, (i, j, chunks), *compartments.window(*window), block_xyz(spec, *window))
+            labels, domain = compartments.window(*window)
+            p = packed
+            span = column_span(*block_factors(spec, *window), labels, p.has, p.frames, p.w0, p.dw)
+            return cache.key(packed, settings, (i, j, chunks), labels, domain, span)
 
         blocks = [(i, j) for i in range(len(rows)) for j in range(len(cols))]
         with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing releases the GIL

@@ -53,6 +53,29 @@ def _pair_rate(V, ages, vo, to, i0, nc, j0, t, dw, w):
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
+def column_span(rs, rx, ry, rz, labels, has, frames, w0, dw):
+    """Least and greatest trace-table column (fractional) that each compartment's cells in a block fall on,
+    for the unit vectors (rs rx, rs ry, rz); +inf and -inf for a compartment without such cells (the cells
+    behind its frame, which the kernel leaves out, included)."""
+    n = has.size
+    lo, hi = np.full(n, np.inf), np.full(n, -np.inf)
+    for i in range(labels.shape[0]):
+        for j in range(labels.shape[1]):
+            label = labels[i, j]
+            if label <= 0 or label >= n or not has[label]:
+                continue
+            x, y, z = rs[i, j] * rx[i, j], rs[i, j] * ry[i, j], rz[i, j]
+            xc = x * frames[label, 0, 0] + y * frames[label, 0, 1] + z * frames[label, 0, 2]
+            if not xc > 0.17:
+                continue
+            xe = x * frames[label, 1, 0] + y * frames[label, 1, 1] + z * frames[label, 1, 2]
+            column = (xe / xc - w0[label]) / dw[label]
+            lo[label] = min(lo[label], column)
+            hi[label] = max(hi[label], column)
+    return lo, hi
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
 def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
              sigma, support, borrows, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags,
              part, wide, narrow):

@@ -81,26 +81,22 @@ class BlockCache:
     def reused(self) -> int:
         return len(self.reusable)
 
-    def key(self, packed, settings, location, labels: np.ndarray, domain: np.ndarray, xyz) -> str:
-        """The content hash of one block's inputs."""
+    def key(self, packed, settings, location, labels: np.ndarray, domain: np.ndarray, span) -> str:
+        """The content hash of one block's inputs; ``span`` is the least and greatest trace-table column of
+        each compartment's cells in the block (:func:`agegrid.age_kernel.column_span`)."""
         digest = hashlib.sha256()
         digest.update(f"{__version__}|{location}|{settings}".encode())
         digest.update(np.ascontiguousarray(labels).tobytes())
         digest.update(np.ascontiguousarray(domain).tobytes())
-        x, y, z = xyz
+        least, greatest = span
         present = np.flatnonzero(np.bincount(np.maximum(labels, 0).ravel()))  # the labels in the block, sorted
         for label in present:
             if label <= 0 or label >= len(packed.has) or not packed.has[label]:
                 continue
-            sel = labels == label
             frame = packed.frames[label]
-            xc = x[sel] * frame[0, 0] + y[sel] * frame[0, 1] + z[sel] * frame[0, 2]
-            xe = x[sel] * frame[1, 0] + y[sel] * frame[1, 1] + z[sel] * frame[1, 2]
-            with np.errstate(invalid="ignore", divide="ignore"):
-                col = (np.where(xc > 0.17, xe / xc, np.nan) - packed.w0[label]) / packed.dw[label]
             nc, k = int(packed.ncol[label]), int(packed.ntrace[label])
-            lo = int(np.clip(np.floor(np.nanmin(col, initial=0.0)) - MARGIN_COLUMNS, 0, nc - 1))
-            hi = int(np.clip(np.ceil(np.nanmax(col, initial=0.0)) + MARGIN_COLUMNS, 0, nc - 1)) + 1
+            lo = int(np.clip(np.floor(min(least[label], 0.0)) - MARGIN_COLUMNS, 0, nc - 1))
+            hi = int(np.clip(np.ceil(max(greatest[label], 0.0)) + MARGIN_COLUMNS, 0, nc - 1)) + 1
             v0, t0 = int(packed.voff[label]), int(packed.toff[label])
             table = packed.V[v0:v0 + k * nc].reshape(k, nc)
             dist = packed.D[v0:v0 + k * nc].reshape(k, nc)
