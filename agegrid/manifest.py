@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import platform
 import resource
 from importlib.metadata import PackageNotFoundError, version
@@ -34,7 +35,8 @@ def describe_file(path: Path) -> dict:
 
 
 class FileDescriptions:
-    """Size and sha256 of files, each hashed on a background thread from the moment it is complete.
+    """Size and sha256 of files, each hashed on a background thread from the moment it is complete, then
+    flushed to disk (fsync), so that the flush before the outputs are renamed has little left to do.
 
     A build hands over each staged output as soon as it is written (the NetCDF while the COGs are
     assembled and the tables made); :meth:`describe` waits for those and hashes the rest.
@@ -44,11 +46,14 @@ class FileDescriptions:
         from concurrent.futures import ThreadPoolExecutor
 
         self.pool = ThreadPoolExecutor(threads)
+        self.flushes = ThreadPoolExecutor(1)
         self.futures: dict = {}
 
     def start(self, path: Path) -> None:
-        """Begin hashing a complete file."""
-        self.futures[Path(path)] = self.pool.submit(describe_file, Path(path))
+        """Begin hashing a complete file; its flush to disk follows on another thread, unwaited for."""
+        path = Path(path)
+        self.futures[path] = future = self.pool.submit(describe_file, path)
+        future.add_done_callback(lambda _: self.flushes.submit(_flush, path))
 
     def describe(self, staged: dict[Path, Path]) -> list[dict]:
         """Size and sha256 of each staged output ({target: staged}), under its target's path."""
@@ -60,6 +65,16 @@ class FileDescriptions:
 
     def close(self) -> None:
         self.pool.shutdown(wait=True, cancel_futures=True)
+        self.flushes.shutdown(wait=True, cancel_futures=True)
+
+
+def _flush(path: Path) -> None:
+    """Force a file's data to disk (a file already replaced or removed is skipped)."""
+    try:
+        with open(path, "rb") as fh:
+            os.fsync(fh.fileno())
+    except (FileNotFoundError, IsADirectoryError):
+        pass
 
 
 def versions() -> dict:
