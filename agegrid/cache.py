@@ -140,8 +140,8 @@ class BlockCache:
                 var = nc[name]
                 values = var[window]
                 if values.dtype.kind in "iu":
-                    fill = var.attrs["_FillValue"][0]
-                    values = np.where(values == fill, np.float32(np.nan), values.astype(np.float32))
+                    fill = np.ravel(var.attrs.get("_FillValue", []))
+                    values = np.where(np.isin(values, fill), np.float32(np.nan), values.astype(np.float32))
                 layers[name] = values
         return layers
 
