@@ -35,11 +35,12 @@ def describe_file(path: Path) -> dict:
 
 
 class FileDescriptions:
-    """Size and sha256 of files, each hashed on a background thread from the moment it is complete, then
-    flushed to disk (fsync), so that the flush before the outputs are renamed has little left to do.
+    """Size and sha256 of files, each hashed on a background thread from the moment it is complete.
 
     A build hands over each staged output as soon as it is written (the NetCDF while the COGs are
-    assembled and the tables made); :meth:`describe` waits for those and hashes the rest.
+    assembled and the tables made); :meth:`describe` waits for those and hashes the rest, then starts
+    flushing them to disk (fsync) on another thread while the build goes on (the report), so that the
+    flush before the outputs are renamed has little left to do.
     """
 
     def __init__(self, threads: int = 2):
@@ -50,18 +51,20 @@ class FileDescriptions:
         self.futures: dict = {}
 
     def start(self, path: Path) -> None:
-        """Begin hashing a complete file; its flush to disk follows on another thread, unwaited for."""
-        path = Path(path)
-        self.futures[path] = future = self.pool.submit(describe_file, path)
-        future.add_done_callback(lambda _: self.flushes.submit(_flush, path))
+        """Begin hashing a complete file."""
+        self.futures[Path(path)] = self.pool.submit(describe_file, Path(path))
 
     def describe(self, staged: dict[Path, Path]) -> list[dict]:
         """Size and sha256 of each staged output ({target: staged}), under its target's path."""
         for source in staged.values():
             if Path(source).exists() and Path(source) not in self.futures:
                 self.start(source)
-        return [{"path": str(target), **{k: v for k, v in self.futures[Path(source)].result().items() if k != "path"}}
-                for target, source in staged.items() if Path(source) in self.futures]
+        described = [{"path": str(target), **{k: v for k, v in self.futures[Path(source)].result().items()
+                                               if k != "path"}}
+                     for target, source in staged.items() if Path(source) in self.futures]
+        for source in staged.values():
+            self.flushes.submit(_flush, Path(source))
+        return described
 
     def close(self) -> None:
         self.pool.shutdown(wait=True, cancel_futures=True)
