@@ -216,8 +216,9 @@ def main(argv=None) -> int:
             print(f"{'':>16}layers and files (inputs to every layer in NetCDF and COG, tables; no report, no "
                   f"start-up) {build['layers_and_files_s']:.2f} s (x{row['layers_and_files_over_griddata']:.1f} "
                   f"griddata)")
-            print(f"{'':>16}the same in one process, warm, alternated with griddata: {steady['layers_and_files_s']:.2f} s "
-                  f"against {steady['griddata_s']:.3f} s (x{steady['over_griddata']:.1f} griddata)")
+            print(f"{'':>16}the same in one process, warm, alternated with griddata: "
+                  f"{steady['layers_and_files_s']:.2f} s against {steady['griddata_s']:.3f} s "
+                  f"(x{steady['over_griddata']:.1f} griddata)")
             print(f"{'':>16}build stages (median s): {build['stages_s']}")
             print(f"{'':>16}no-op rerun {build['noop_rerun_s']:.2f} s = {build['noop_over_build']:.2f} of a build")
         for small, big in zip(results, results[1:]):

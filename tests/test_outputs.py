@@ -204,7 +204,8 @@ def test_netcdf_stores_the_cog_tiles_compressed_once(tmp_path, spacing, chunk):
     # the chunk is the COG's tile, byte for byte
     data = (a / "basin_age.tif").read_bytes()
     tags = tiff.read_tags(data)
-    offset, count = (int(np.frombuffer(tags[code].raw, "<u4")[0]) for code in (tiff.TILE_OFFSETS, tiff.TILE_BYTE_COUNTS))
+    offset, count = (int(np.frombuffer(tags[code].raw, "<u4")[0])
+                     for code in (tiff.TILE_OFFSETS, tiff.TILE_BYTE_COUNTS))
     with h5py.File(a / "basin.nc", "r") as nc:
         filter_mask, chunk = nc["age"].id.read_direct_chunk((0, 0))
     assert chunk == data[offset:offset + count]

@@ -1,7 +1,7 @@
 """Cloud-Optimized GeoTIFFs, one per output layer, written tile by tile as the layers stream past.
 
-Every block a layer hands over is cut into square tiles (512 or 256 cells a side, see :func:`tile_side`). A finished tile is encoded on a worker
-thread (the TIFF predictor if asked, then the codec, both releasing the GIL) and appended to its level's
+Every block a layer hands over is cut into square tiles (512 or 256 cells a side, see :func:`tile_side`).
+A finished tile is encoded on a worker thread (the TIFF predictor if asked, then the codec, both releasing the GIL) and appended to its level's
 spill file beside the target, and its 2 x 2 reduction fills a quarter of a tile of the next overview
 level: the mean of the valid cells for real values, the top-left cell for codes and counts. So the
 overviews are made in the same pass, and memory holds only unfinished tiles. When the grid is done,
@@ -191,7 +191,8 @@ class _Pyramid:
                     continue
                 entry = self.open[level].get((ti, tj))
                 if entry is None:
-                    entry = self.open[level][(ti, tj)] = [np.full((self.tile, self.tile), self.fill, dtype=self.dtype), 0]
+                    blank = np.full((self.tile, self.tile), self.fill, dtype=self.dtype)
+                    entry = self.open[level][(ti, tj)] = [blank, 0]
                 entry[0][rs.start - top:rs.stop - top, cs.start - left:cs.stop - left] = \
                     values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
                 entry[1] += (rs.stop - rs.start) * (cs.stop - cs.start)

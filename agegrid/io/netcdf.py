@@ -171,15 +171,16 @@ class ChunkWriter:
     Each chunk is byte-shuffled and deflated in parallel threads (ISA-L's deflate, which releases the
     GIL) while the caller goes on, and written in order with HDF5's direct chunk write: the file's own
     shuffle + deflate filters read it back like any other NetCDF-4 file. At most a few chunks per
-    thread wait to be written.
+    thread wait to be written. The ``tiled`` layers' chunks arrive already encoded, through
+    :meth:`write_encoded`; their blocks are ignored.
     """
 
-    def __init__(self, staged: Path, spec, enc: dict, names: list[str], threads: int | None = None):
+    def __init__(self, staged: Path, spec, enc: dict, names: list[str], threads: int | None = None, tiled=()):
         import h5py
 
         self.enc = enc
         self.chunks = spec.chunks
-        self.tiled: set[str] = set()  # layers whose chunks arrive encoded (:meth:`write_encoded`)
+        self.tiled = set(tiled)  # layers whose chunks arrive encoded (:meth:`write_encoded`)
         self.file = h5py.File(staged, "r+")
         self.datasets = {n: self.file[n] for n in names}
         self.threads = threads or os.cpu_count() or 1
@@ -259,9 +260,8 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None)
         tiled = {name: (tiles.tile, tiles.tile) for name in tiles.layers if name in ds.variables}
     try:
         enc, layers = create_netcdf(ds, staged, spec, tiled)
-        writer = ChunkWriter(staged, spec, enc, layers)
+        writer = ChunkWriter(staged, spec, enc, layers, tiled=tiled)
         if tiled:
-            writer.tiled = set(tiled)
             tiles.on_tile = writer.write_encoded
         try:
             stream(ds, layers, [writer.write, *extra_sinks])
