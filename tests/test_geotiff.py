@@ -133,28 +133,26 @@ def test_read_tags_of_a_gdal_geotiff():
         tiff.read_tags(b"MM\x00*\x00\x00\x00\x08")
 
 
-@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")
-@pytest.mark.parametrize("bigtiff", [False, True])
-def test_pyramid_layout_classic_and_bigtiff(tmp_path, bigtiff):
-    """A two-level pyramid of raw tiles, classic TIFF and BigTIFF (header version 42 and 43, TIFF 6.0 and the
-    BigTIFF proposal, from memory): GDAL reads both, and rio-cogeo finds the IFDs before the data."""
-    from rio_cogeo.cogeo import cog_validate
-
+def raw_pyramid(folder, order=None):
+    """A two-level pyramid of raw 256 x 256 uint16 tiles in spill files (full resolution's tiles in ``order``,
+    row order by default), with the image and its overview."""
+    folder.mkdir(exist_ok=True)
     image = np.arange(300 * 520, dtype=np.uint16).reshape(300, 520)
     overview = image[::2, ::2]
     levels = []
     for index, values in enumerate((image, overview)):
         ny, nx = values.shape
-        spill = tmp_path / f"level{index}.tiles"
-        offsets, counts = [], []
+        spill = folder / f"level{index}.tiles"
+        grid = [(ti, tj) for ti in range(-(-ny // 256)) for tj in range(-(-nx // 256))]
+        offsets, counts = np.zeros(len(grid), np.int64), np.zeros(len(grid), np.int64)
         with open(spill, "wb") as fh:
-            for ti in range(-(-ny // 256)):
-                for tj in range(-(-nx // 256)):
-                    tile = np.zeros((256, 256), np.uint16)
-                    part = values[ti * 256:(ti + 1) * 256, tj * 256:(tj + 1) * 256]
-                    tile[:part.shape[0], :part.shape[1]] = part
-                    offsets.append(fh.tell())
-                    counts.append(fh.write(tile.tobytes()))
+            for k in (order if order is not None and index == 0 else range(len(grid))):
+                ti, tj = grid[k]
+                tile = np.zeros((256, 256), np.uint16)
+                part = values[ti * 256:(ti + 1) * 256, tj * 256:(tj + 1) * 256]
+                tile[:part.shape[0], :part.shape[1]] = part
+                offsets[k] = fh.tell()
+                counts[k] = fh.write(tile.tobytes())
         S, L = tiff.SHORT, tiff.LONG
         tags = {tiff.IMAGE_WIDTH: tiff.Tag.of(L, nx), tiff.IMAGE_LENGTH: tiff.Tag.of(L, ny),
                 tiff.BITS_PER_SAMPLE: tiff.Tag.of(S, 16), tiff.COMPRESSION: tiff.Tag.of(S, 1),
@@ -163,7 +161,18 @@ def test_pyramid_layout_classic_and_bigtiff(tmp_path, bigtiff):
                 tiff.SAMPLE_FORMAT: tiff.Tag.of(S, 1)}
         if index:
             tags[tiff.NEW_SUBFILE_TYPE] = tiff.Tag.of(L, 1)
-        levels.append(tiff.Level(tags, spill, np.array(offsets), np.array(counts)))
+        levels.append(tiff.Level(tags, spill, offsets, counts))
+    return levels, image, overview
+
+
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")
+@pytest.mark.parametrize("bigtiff", [False, True])
+def test_pyramid_layout_classic_and_bigtiff(tmp_path, bigtiff):
+    """A two-level pyramid of raw tiles, classic TIFF and BigTIFF (header version 42 and 43, TIFF 6.0 and the
+    BigTIFF proposal, from memory): GDAL reads both, and rio-cogeo finds the IFDs before the data."""
+    from rio_cogeo.cogeo import cog_validate
+
+    levels, image, overview = raw_pyramid(tmp_path)
     target = tmp_path / "pyramid.tif"
     tiff.write_pyramid(target, levels, bigtiff=bigtiff)
     assert target.read_bytes()[2] == (43 if bigtiff else 42)
@@ -173,3 +182,35 @@ def test_pyramid_layout_classic_and_bigtiff(tmp_path, bigtiff):
         assert np.array_equal(src.read(1), image)
     with rasterio.open(target, OVERVIEW_LEVEL=0) as ovr:
         assert np.array_equal(ovr.read(1), overview)
+
+
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")
+def test_full_resolution_inserted_behind_or_copied_gives_the_same_bytes(tmp_path, monkeypatch):
+    """In place (fallocate's insert-range, where the file system has it), copied (forced), and copied because
+    the tiles were stored out of order: the same file, read by GDAL, its full resolution on a 4 KiB boundary."""
+    from rio_cogeo.cogeo import cog_validate
+
+    levels, image, _ = raw_pyramid(tmp_path / "in_place")
+    in_place = tmp_path / "in_place.tif"
+    tiff.write_pyramid(in_place, levels)
+    stayed = levels[0].spill.exists()
+    copied_levels, _, _ = raw_pyramid(tmp_path / "copied")
+    with monkeypatch.context() as m:
+        m.setattr(tiff, "_insert_front", lambda path, length: False)
+        tiff.write_pyramid(tmp_path / "copied.tif", copied_levels)
+    assert copied_levels[0].spill.exists()  # the copy leaves its sources
+    shuffled_levels, _, _ = raw_pyramid(tmp_path / "shuffled", order=[5, 2, 0, 4, 1, 3])
+    tiff.write_pyramid(tmp_path / "shuffled.tif", shuffled_levels)
+    assert shuffled_levels[0].spill.exists()  # tiles out of row order are always copied
+    data = in_place.read_bytes()
+    assert data == (tmp_path / "copied.tif").read_bytes() == (tmp_path / "shuffled.tif").read_bytes()
+    first = int(np.frombuffer(tiff.read_tags(data)[tiff.TILE_OFFSETS].raw, "<u4")[0])
+    assert first % tiff.ALIGNMENT == 0 and not any(data[first - 16:first])
+    assert cog_validate(str(in_place), quiet=True)[0]
+    with rasterio.open(in_place) as src:
+        assert np.array_equal(src.read(1), image)
+    probe = tmp_path / "probe"
+    probe.write_bytes(b"x" * 2 * tiff.ALIGNMENT)
+    if tiff._insert_front(probe, tiff.ALIGNMENT):  # this file system inserts ranges: the in-place path was taken
+        assert probe.read_bytes() == b"\0" * tiff.ALIGNMENT + b"x" * 2 * tiff.ALIGNMENT
+        assert not stayed

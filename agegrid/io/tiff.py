@@ -2,14 +2,20 @@
 
 The writer lays a file out the cloud-optimized way: header, the IFD of the full resolution and of
 each overview in that order (each followed by its tag values), then the tiles, those of the smallest
-overview first and the full resolution's last, each level's row by row. Tiles come already encoded,
-from a file per level holding them in any order; the file is classic TIFF when it fits in 4 GiB,
-BigTIFF when not.
+overview first and the full resolution's last, each level's row by row; the full resolution's tiles start
+at a multiple of :data:`ALIGNMENT` bytes (zeros in between). Tiles come already encoded, from a file per
+level holding them in any order; the file is classic TIFF when it fits in 4 GiB, BigTIFF when not.
+
+When the full resolution's file holds its tiles in row order, everything before them is inserted in
+front of them in place (Linux's ``fallocate`` with ``FALLOC_FL_INSERT_RANGE``, on file systems that have
+it: ext4, XFS) and that file becomes the TIFF, so the bulk of the image is never copied; elsewhere the
+tiles are copied. Both ways give the same bytes.
 Byte order is little-endian throughout. Layout from the TIFF 6.0 specification and the BigTIFF
 proposal (both from memory: header, IFD entry and type sizes).
 """
 from __future__ import annotations
 
+import ctypes
 import os
 import struct
 from dataclasses import dataclass, field
@@ -17,6 +23,13 @@ from pathlib import Path
 from typing import NamedTuple
 
 import numpy as np
+
+#: The full resolution's tiles start at a multiple of this many bytes, a file-system block, so that the
+#: header, the IFDs and the overviews can be inserted in front of them in place.
+ALIGNMENT = 4096
+#: ``fallocate`` mode inserting a range of zeros into a file (linux/falloc.h; value from memory, checked by
+#: the test that compares the file written in place with the one copied).
+FALLOC_FL_INSERT_RANGE = 0x20
 
 #: TIFF field types used here and their sizes in bytes (TIFF 6.0 section 2; LONG8 from BigTIFF).
 BYTE, ASCII, SHORT, LONG, RATIONAL, SBYTE, UNDEFINED, SSHORT, SLONG, SRATIONAL, FLOAT, DOUBLE = range(1, 13)
@@ -75,36 +88,67 @@ class Level:
 
 
 def write_pyramid(target: Path, levels: list[Level], bigtiff: bool | None = None) -> None:
-    """Write ``levels`` (full resolution first) to ``target``: header, all IFDs, then the tiles, smallest level's first.
+    """Write ``levels`` (full resolution first) to ``target``: header, all IFDs, then the tiles, smallest level's
+    first; the full resolution's file is renamed to ``target`` when its tiles could stay where they are.
 
     ``bigtiff`` None chooses classic TIFF when the file fits in 4 GiB and BigTIFF when not.
     """
-    data_bytes = int(sum(level.counts.sum() for level in levels))
+    full = levels[0]
+    full_bytes = int(full.counts.sum())
     for big in ((False, True) if bigtiff is None else (bigtiff,)):
-        ifds, data_start = _layout(levels, big)
-        if big or data_start + data_bytes < 2**32:
+        ifds, full_start = _layout(levels, big)
+        if big or full_start + full_bytes < 2**32:
             break
     else:
-        raise ValueError(f"{target.name}: {data_start + data_bytes} bytes do not fit in a classic TIFF")
-    with open(target, "wb") as out:
-        out.write(b"II" + (struct.pack("<HHHQ", 43, 8, 0, 16) if big else struct.pack("<HI", 42, 8)))
-        out.write(b"".join(ifds))
-        out.flush()
-        for level in reversed(levels):
-            with open(level.spill, "rb") as spill:
-                _copy(spill, out, level.offsets, level.counts)
+        raise ValueError(f"{target.name}: {full_start + full_bytes} bytes do not fit in a classic TIFF")
+    header = b"II" + (struct.pack("<HHHQ", 43, 8, 0, 16) if big else struct.pack("<HI", 42, 8))
+    in_row_order = np.array_equal(full.offsets, np.cumsum(full.counts) - full.counts)
+    if in_row_order and _insert_front(full.spill, full_start):
+        with open(full.spill, "r+b", buffering=0) as out:
+            _write_front(out, header, ifds, levels)
+        os.replace(full.spill, target)
+        return
+    with open(target, "wb", buffering=0) as out:
+        _write_front(out, header, ifds, levels)
+        out.write(b"\0" * (full_start - out.tell()))
+        with open(full.spill, "rb") as spill:
+            _copy(spill, out, full.offsets, full.counts)
+
+
+def _write_front(out, header: bytes, ifds: list[bytes], levels: list[Level]) -> None:
+    """Header, IFDs and the overviews' tiles, from the start of ``out`` (unbuffered)."""
+    out.seek(0)
+    out.write(header + b"".join(ifds))
+    for level in reversed(levels[1:]):
+        with open(level.spill, "rb") as spill:
+            _copy(spill, out, level.offsets, level.counts)
+
+
+def _insert_front(path: Path, length: int) -> bool:
+    """Insert ``length`` zero bytes at the start of a file in place; False where the system or the file system
+    cannot (``length`` a multiple of :data:`ALIGNMENT`, which must also be a multiple of its block size)."""
+    try:
+        fallocate = ctypes.CDLL(None, use_errno=True).fallocate
+    except (OSError, AttributeError):
+        return False
+    fallocate.argtypes = [ctypes.c_int, ctypes.c_int, ctypes.c_int64, ctypes.c_int64]
+    fd = os.open(path, os.O_RDWR)
+    try:
+        return fallocate(fd, FALLOC_FL_INSERT_RANGE, 0, length) == 0
+    finally:
+        os.close(fd)
 
 
 def _layout(levels: list[Level], big: bool) -> tuple[list[bytes], int]:
-    """The encoded IFDs (offsets resolved) and where the tile data starts."""
+    """The encoded IFDs (offsets resolved) and where the full resolution's tiles start."""
     header = 16 if big else 8
     sizes = [_ifd_size(level, big) for level in levels]
-    data_start = header + sum(sizes)
     ifd_offsets = list(np.cumsum([header] + sizes[:-1]))
-    data_offsets, position = {}, data_start
-    for index in reversed(range(len(levels))):
+    data_offsets, position = {}, header + sum(sizes)
+    for index in reversed(range(1, len(levels))):
         data_offsets[index] = position
         position += int(levels[index].counts.sum())
+    data_offsets[0] = -(-position // ALIGNMENT) * ALIGNMENT
     ifds = []
     for index, level in enumerate(levels):
         tags = dict(level.tags)
@@ -113,7 +157,7 @@ def _layout(levels: list[Level], big: bool) -> tuple[list[bytes], int]:
         tags[TILE_BYTE_COUNTS] = Tag.of(LONG, level.counts)
         following = ifd_offsets[index + 1] if index + 1 < len(levels) else 0
         ifds.append(_encode_ifd(tags, int(ifd_offsets[index]), int(following), big))
-    return ifds, data_start
+    return ifds, data_offsets[0]
 
 
 def _ifd_size(level: Level, big: bool) -> int:
