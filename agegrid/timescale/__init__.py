@@ -64,6 +64,7 @@ class Timescale:
     old: np.ndarray
     polarity: np.ndarray
     metadata: dict = field(default_factory=dict)
+    _row_cache: dict = field(default_factory=dict, init=False, repr=False, compare=False)
 
     @property
     def reference(self) -> str:
@@ -85,9 +86,11 @@ class Timescale:
         return isinstance(other, Timescale) and hash(self) == hash(other)
 
     def _rows(self, label: str) -> np.ndarray:
-        """Indices of the rows that make up a chron (the row itself, or all its subchrons)."""
-        return np.array([i for i, c in enumerate(self.chrons) if c == label or c.startswith(label + ".")],
-                        dtype=int)
+        """Indices of the rows that make up a chron (the row itself, or all its subchrons), looked up once."""
+        if label not in self._row_cache:
+            self._row_cache[label] = np.array([i for i, c in enumerate(self.chrons)
+                                               if c == label or c.startswith(label + ".")], dtype=int)
+        return self._row_cache[label]
 
     def resolve(self, label: str) -> str:
         """The canonical name of a chron known to this timescale.
