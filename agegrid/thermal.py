@@ -32,47 +32,44 @@ def _age(age) -> np.ndarray:
 def _root_then_exponential(age, ridge, coefficient, switch, asymptote, amplitude, decay) -> np.ndarray:
     """The empirical depth form: ridge + coefficient sqrt(t) before ``switch``, asymptote - amplitude
     exp(-decay t) from there on; NaN for negative or missing ages."""
-    return _cell_by_cell(_depth_law, age, ridge, coefficient, switch, asymptote, amplitude, decay)
+    return _two_branches(age, 0.0, ridge, coefficient, False, switch, False, asymptote, -amplitude, decay)
 
 
 def _inverse_root_then_exponential(age, coefficient, switch, asymptote, amplitude, decay, through_switch
                                    ) -> np.ndarray:
     """The empirical heat-flow form: coefficient / sqrt(t) before ``switch`` (and at it when
     ``through_switch``), asymptote + amplitude exp(-decay t) after; t clamped to MIN_HEAT_FLOW_AGE_MYR."""
-    return _cell_by_cell(_heat_flow_law, age, coefficient, switch, asymptote, amplitude, decay, through_switch)
+    return _two_branches(age, MIN_HEAT_FLOW_AGE_MYR, 0.0, coefficient, True, switch, through_switch, asymptote,
+                         amplitude, decay)
 
 
-def _cell_by_cell(law, age, *parameters) -> np.ndarray:
-    """A compiled law over every cell of ``age`` (any shape), one branch per cell and no temporaries
+def _two_branches(age, youngest, offset, coefficient, inverse, switch, through_switch, asymptote, amplitude, decay
+                  ) -> np.ndarray:
+    """:func:`_two_branch_law` over every cell of ``age`` (any shape): one branch per cell and no temporaries
     (2.5x faster than both branches in numpy over a 512 x 512 block)."""
     age = np.asarray(age, dtype=float)
     out = np.empty(age.shape)
-    law(np.ascontiguousarray(age).reshape(-1), out.reshape(-1), *(float(p) for p in parameters))
+    _two_branch_law(np.ascontiguousarray(age).reshape(-1), out.reshape(-1), float(youngest), float(offset),
+                    float(coefficient), bool(inverse), float(switch), bool(through_switch), float(asymptote),
+                    float(amplitude), float(decay))
     return out
 
 
 @njit(cache=True, nogil=True)
-def _depth_law(age, out, ridge, coefficient, switch, asymptote, amplitude, decay):
-    for i in range(age.size):
-        t = age[i]
-        if not t >= 0.0:
-            out[i] = np.nan
-        elif t < switch:
-            out[i] = ridge + coefficient * math.sqrt(t)
-        else:
-            out[i] = asymptote - amplitude * math.exp(-decay * t)
-
-
-@njit(cache=True, nogil=True)
-def _heat_flow_law(age, out, coefficient, switch, asymptote, amplitude, decay, through_switch):
+def _two_branch_law(age, out, youngest, offset, coefficient, inverse, switch, through_switch, asymptote, amplitude,
+                    decay):
+    """offset + coefficient sqrt(t) (or / sqrt(t) when ``inverse``) before ``switch`` (at it too when
+    ``through_switch``), asymptote + amplitude exp(-decay t) after; t no younger than ``youngest``; NaN for
+    negative or missing ages."""
     for i in range(age.size):
         t = age[i]
         if not t >= 0.0:
             out[i] = np.nan
             continue
-        t = max(t, MIN_HEAT_FLOW_AGE_MYR)
+        t = max(t, youngest)
         if t < switch or (through_switch and t == switch):
-            out[i] = coefficient / math.sqrt(t)
+            root = math.sqrt(t)
+            out[i] = offset + (coefficient / root if inverse else coefficient * root)
         else:
             out[i] = asymptote + amplitude * math.exp(-decay * t)
 
