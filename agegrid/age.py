@@ -53,7 +53,7 @@ import numpy as np
 from numba import njit
 
 from agegrid import sphere
-from agegrid.age_kernel import DATING, MOTION, PARTS, column_span
+from agegrid.age_kernel import DATING, MIN_COS_FROM_CENTRE, MOTION, PARTS, column_span
 
 log = logging.getLogger("agegrid")
 
@@ -64,8 +64,6 @@ EXTRAPOLATION_FRACTION = 0.25
 #: Ridge segments whose strike circles' poles lie within this angle belong to one ridge system (agegrid's
 #: choice: segments offset by transforms lie on nearly one great circle).
 SIBLING_MAX_POLE_ANGLE_DEG = 25.0
-#: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
-MIN_COS_FROM_CENTRE = 0.17
 #: The empty trace passed as 'no younger trace' to :func:`_trace`.
 NO_TRACE = np.zeros(0)
 

@@ -29,6 +29,8 @@ PARTS = {
     "motion": ((), ("half_rate", "spreading_azimuth", "flank", "full_rate", "asymmetry")),
 }
 DATING, MOTION = range(len(PARTS))
+#: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
+MIN_COS_FROM_CENTRE = 0.17
 AGE, FRACTION = range(len(PARTS["dating"][0]))
 SIGMA, FLAG, YOUNG, OLD, COMPARTMENT = range(len(PARTS["dating"][1]))
 RATE, AZIMUTH, FLANK, FULL_RATE, ASYMMETRY = range(len(PARTS["motion"][1]))
@@ -66,7 +68,7 @@ def column_span(rs, rx, ry, rz, labels, has, frames, w0, dw):
                 continue
             x, y, z = rs[i, j] * rx[i, j], rs[i, j] * ry[i, j], rz[i, j]
             xc = x * frames[label, 0, 0] + y * frames[label, 0, 1] + z * frames[label, 0, 2]
-            if not xc > 0.17:
+            if not xc > MIN_COS_FROM_CENTRE:
                 continue
             xe = x * frames[label, 1, 0] + y * frames[label, 1, 1] + z * frames[label, 1, 2]
             column = (xe / xc - w0[label]) / dw[label]
@@ -115,7 +117,7 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
             px, py, pz = rs[i, jj] * rx[i, jj], rs[i, jj] * ry[i, jj], rz[i, jj]
             f0 = frames[lab]
             xc = px * f0[0, 0] + py * f0[0, 1] + pz * f0[0, 2]
-            if xc <= 0.17:
+            if xc <= MIN_COS_FROM_CENTRE:
                 continue
             xe = px * f0[1, 0] + py * f0[1, 1] + pz * f0[1, 2]
             s = px * f0[2, 0] + py * f0[2, 1] + pz * f0[2, 2]

@@ -7,7 +7,7 @@ fall on (with a margin). A pick moved in one corner changes the traces only near
 blocks that see those columns get new keys and are recomputed.
 
 Nothing extra is written for this: the last build's NetCDF already holds every block's age-stage layers,
-chunked by block and losslessly compressed. ``<output>/.agegrid-cache/blocks.json`` records that file
+losslessly compressed. ``<output>/.agegrid-cache/blocks.json`` records that file
 (its size and modification time) and the key of each block it holds; a block whose key is unchanged is
 read back from it, bit for bit. When NetCDF is not among the outputs, the file is kept in that folder.
 
