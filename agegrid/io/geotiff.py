@@ -26,7 +26,7 @@ from agegrid.io import tiff
 from agegrid.io.atomic import staging_path
 
 #: COG tile sides, largest first: the largest that divides the grid's block side is used (GDAL's COG driver
-#: writes 512 by default), so every block is cut into whole tiles; 256 when neither divides it.
+#: writes 512 by default, from memory), so every block is cut into whole tiles; 256 when neither divides it.
 TILE_SIDES = (512, 256)
 
 
