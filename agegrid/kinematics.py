@@ -10,49 +10,46 @@ import io
 
 import numpy as np
 
+from agegrid.grouped import Groups
+
 COLUMNS = ("segment", "flank", "flank_azimuth_deg", "age_from_myr", "age_to_myr", "cells", "half_rate_mm_yr",
            "full_rate_mm_yr", "asymmetry_percent", "full_rate_cells")
 
 
-def _circular_mean(degrees: np.ndarray) -> float:
-    rad = np.radians(degrees)
-    return float(np.degrees(np.arctan2(np.sin(rad).mean(), np.cos(rad).mean())) % 360)
-
-
 def rate_rows(compartment, flank, age, half_rate, full_rate, asymmetry, azimuth, band_myr: float) -> list[dict]:
-    """Rows of the rate table from flattened layers; segments are compartments (see the ``compartment`` layer)."""
-    ok = np.isfinite(age) & np.isfinite(half_rate) & (flank != 0)
-    band = np.floor(age[ok] / band_myr).astype(np.int64)
-    order = np.lexsort((band, flank[ok], compartment[ok]))  # one sort: groups by segment, flank, band
-    comp, fl, band = compartment[ok][order], flank[ok][order], band[order]
-    hr, fr, asym, az = (a[ok][order] for a in (half_rate, full_rate, asymmetry, azimuth))
-    side_starts = _starts(comp, fl)
-    group_starts = _starts(comp, fl, band)
+    """Rows of the rate table from flattened layers; segments are compartments (see the ``compartment`` layer).
+
+    Rows run by segment, flank (-1 first) and age band; a flank's azimuth is the circular mean over its cells.
+    """
+    cells = np.flatnonzero(np.isfinite(age) & np.isfinite(half_rate) & (flank != 0))
+    if not len(cells):
+        return []
+    band = np.floor(age[cells] / band_myr).astype(np.int64)
+    segment = compartment[cells].astype(np.int64)
+    lowest_segment, lowest_band = int(segment.min()), int(band.min())
+    bands = int(band.max()) - lowest_band + 1
+    side = (segment - lowest_segment) * 2 + (flank[cells] > 0)
+    groups = Groups(side * bands + band - lowest_band, cells)
+    side_of_group = groups.codes // bands
+    rad = np.radians(azimuth[groups.cells], dtype=np.float32)  # float32: headings are rounded to 0.1 degree
+    east, north = (np.bincount(side_of_group, np.add.reduceat(f(rad), groups.starts, dtype=np.float64))
+                   for f in (np.sin, np.cos))
+    headings = np.round(np.degrees(np.arctan2(east, north)) % 360, 1)
+    count, half = groups.quantiles(half_rate, (50,))
+    full_count, full = groups.quantiles(full_rate, (50,))
+    _, asym = groups.quantiles(np.where(np.isfinite(full_rate), asymmetry, np.nan), (50,))
     rows = []
-    for s0, s1 in zip(side_starts, np.r_[side_starts[1:], len(comp)]):
-        heading = round(_circular_mean(az[s0:s1]), 1)
-        inside = group_starts[(group_starts >= s0) & (group_starts < s1)]
-        for g0, g1 in zip(inside, np.r_[inside[1:], s1]):
-            finite = np.isfinite(fr[g0:g1])
-            b = band[g0]
-            rows.append({"segment": int(comp[g0]), "flank": int(fl[g0]), "flank_azimuth_deg": heading,
-                         "age_from_myr": round(b * band_myr, 6), "age_to_myr": round((b + 1) * band_myr, 6),
-                         "cells": int(g1 - g0), "half_rate_mm_yr": round(float(np.median(hr[g0:g1])), 3),
-                         "full_rate_mm_yr": round(float(np.median(fr[g0:g1][finite])), 3) if finite.any() else "",
-                         "asymmetry_percent": round(float(np.median(asym[g0:g1][finite])), 2) if finite.any() else "",
-                         "full_rate_cells": int(finite.sum())})
+    for g, code in enumerate(groups.codes.tolist()):
+        s, b = divmod(code, bands)
+        b += lowest_band
+        rows.append({"segment": s // 2 + lowest_segment, "flank": 1 if s % 2 else -1,
+                     "flank_azimuth_deg": float(headings[s]), "age_from_myr": round(b * band_myr, 6),
+                     "age_to_myr": round((b + 1) * band_myr, 6), "cells": int(count[g]),
+                     "half_rate_mm_yr": round(float(half[g, 0]), 3),
+                     "full_rate_mm_yr": round(float(full[g, 0]), 3) if full_count[g] else "",
+                     "asymmetry_percent": round(float(asym[g, 0]), 2) if full_count[g] else "",
+                     "full_rate_cells": int(full_count[g])})
     return rows
-
-
-def _starts(*keys: np.ndarray) -> np.ndarray:
-    """Where a run of equal keys starts in arrays sorted by those keys."""
-    if not len(keys[0]):
-        return np.zeros(0, np.int64)
-    change = np.zeros(len(keys[0]), bool)
-    change[0] = True
-    for key in keys:
-        change[1:] |= key[1:] != key[:-1]
-    return np.flatnonzero(change)
 
 
 RATE_LAYERS = ("compartment", "flank", "age", "half_rate", "full_rate", "asymmetry", "spreading_azimuth")

@@ -12,6 +12,7 @@ import io
 import logging
 import sys
 import time
+from concurrent.futures import ThreadPoolExecutor
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -322,6 +323,16 @@ def _depth_tables(config, sample: xr.Dataset, stride: int) -> tuple[str, dict]:
     return buffer.getvalue(), fit
 
 
+def _tables(config, sample: xr.Dataset, stride: int, stages: Stages) -> tuple[str, dict, str]:
+    """The depth statistics CSV, the sqrt(age) fit and the rates CSV, from the samples."""
+    with stages("depth statistics"):
+        table, fit = _depth_tables(config, sample, stride)
+    with stages("rate table"):
+        flat = {n: sample[n].values.ravel() for n in RATE_LAYERS}
+        rates = rate_table(flat, stride, config.kinematics.age_band_myr)
+    return table, fit, rates
+
+
 @contextlib.contextmanager
 def scheduler(address: str | None = None, workers: int | None = None):
     """The dask scheduler for a build: a cluster at ``address``, N local processes, or threads."""
@@ -391,21 +402,18 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
                     hashes.start(staged_nc)  # while the COGs are assembled and the tables made
-                if cogs is not None:
-                    with stages("assemble geotiff"):
-                        staged_cogs = cogs.finish()
-                    staged.update(staged_cogs)
-                    for path in staged_cogs.values():
-                        hashes.start(path)
                 sample = samples.dataset(ds)
-                with stages("depth statistics"):
-                    table, fit = _depth_tables(config, sample, samples.stride)
-                    facts["depth_fit"] = fit
-                with stages("rate table"):
-                    target = out_dir / f"{config.name}_rates.csv"
-                    flat = {n: sample[n].values.ravel() for n in RATE_LAYERS}
-                    rates_text = rate_table(flat, samples.stride, config.kinematics.age_band_myr)
-                    staged[target] = _stage_text(target, rates_text)
+                with ThreadPoolExecutor(1) as pool:  # the tables while the COGs are assembled (mostly I/O)
+                    tables = pool.submit(_tables, config, sample, samples.stride, stages)
+                    if cogs is not None:
+                        with stages("assemble geotiff"):
+                            staged_cogs = cogs.finish()
+                        staged.update(staged_cogs)
+                        for path in staged_cogs.values():
+                            hashes.start(path)
+                    table, facts["depth_fit"], rates_text = tables.result()
+                target = out_dir / f"{config.name}_rates.csv"
+                staged[target] = _stage_text(target, rates_text)
                 if "zarr" in config.output.formats or magnetic_enabled(config):
                     with open_netcdf(staged_nc, chunks={}, mask_and_scale=True) as written:
                         if "zarr" in config.output.formats:

@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from agegrid.grouped import Groups
+
 
 def residual(predicted, corrected):
     """Predicted minus sediment-corrected observed depth (m): positive where the sea floor is shallower."""
@@ -10,30 +12,24 @@ def residual(predicted, corrected):
 
 
 class AgeBins:
-    """Cells grouped by age bin once (one sort), for the statistics of several layers over the same ages."""
+    """Cells grouped by age bin once, for the statistics of several layers over the same ages."""
 
     def __init__(self, age: np.ndarray, bin_myr: float):
         age = np.asarray(age).ravel()
         cells = np.flatnonzero(np.isfinite(age))
         bins = np.floor(age[cells] / bin_myr).astype(np.int64)
-        if len(bins) and bins.max() < np.iinfo(np.int16).max:
-            bins = bins.astype(np.int16)  # numpy sorts 16-bit integers by radix
-        order = np.argsort(bins, kind="stable")
-        self.cells, self.bin_myr = cells[order], bin_myr
-        self.numbers, self.starts = np.unique(bins[order], return_index=True)
+        self.lowest = int(bins.min()) if len(bins) else 0
+        self.groups, self.bin_myr = Groups(bins - self.lowest, cells), bin_myr
 
     def statistics(self, values: np.ndarray) -> list[dict]:
         """Cell count, median and interquartile range of the finite ``values`` per age bin that has any."""
-        grouped = np.asarray(values).ravel()[self.cells]
+        counts, quartiles = self.groups.quantiles(values, (25, 50, 75))
         rows = []
-        for number, start, stop in zip(self.numbers, self.starts, np.r_[self.starts[1:], len(grouped)]):
-            part = grouped[start:stop]
-            part = part[np.isfinite(part)]
-            if part.size:
-                q1, med, q3 = np.percentile(part, [25, 50, 75])
-                lo = float(number * self.bin_myr)
-                rows.append({"age_from_myr": lo, "age_to_myr": float(lo + self.bin_myr), "cells": int(part.size),
-                             "median_m": float(med), "iqr_m": float(q3 - q1)})
+        for code, count, (low, mid, high) in zip(self.groups.codes, counts, quartiles):
+            if count:
+                lo = float((code + self.lowest) * self.bin_myr)
+                rows.append({"age_from_myr": lo, "age_to_myr": float(lo + self.bin_myr), "cells": int(count),
+                             "median_m": float(mid), "iqr_m": float(high - low)})
         return rows
 
 

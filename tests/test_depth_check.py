@@ -110,11 +110,15 @@ def test_geotiff_on_the_build_lattice_is_read_as_is(tmp_path):
 def test_netcdf_input_other_longitude_convention(tmp_path):
     lon = np.arange(0.25, 360, 0.5)
     lat = np.arange(-89.75, 90, 0.5)
-    values = np.broadcast_to(np.where(lon > 180, lon - 360, lon)[None, :], (len(lat), len(lon))).astype(np.float32)
+    # rows south to north and columns 0-360: both reordered on reading (rows reversed, columns sorted)
+    values = (np.where(lon > 180, lon - 360, lon)[None, :] + 1000 * lat[:, None]).astype(np.float32)
     xr.Dataset({"z": (("lat", "lon"), values)}, coords={"lat": lat, "lon": lon}).to_netcdf(tmp_path / "g.nc")
     spec = GridSpec((-20.0, 20.0, -10.0, 10.0), 1.0)
     out, _ = read_grid(tmp_path / "g.nc", spec)
-    assert np.allclose(out, np.broadcast_to(spec.x[None, :], spec.shape), atol=1e-4)
+    assert np.allclose(out, spec.x[None, :] + 1000 * spec.y[:, None], atol=1e-2)
+    aligned = GridSpec((-20.0, 20.0, -10.0, 10.0), 0.5)  # the source's own lattice: its cells as they are
+    out, _ = read_grid(tmp_path / "g.nc", aligned)
+    assert np.array_equal(out, (aligned.x[None, :] + 1000 * aligned.y[:, None]).astype(np.float32))
 
 
 def test_isotherm_layer(tmp_path):

@@ -57,18 +57,27 @@ def _open_netcdf(path: Path, spec) -> SourceGrid:
             raise BadInput(f"variable {var.name!r} has no coordinate values for {ydim}/{xdim}", path)
         x = ds[xdim].values.astype(float)
         y = ds[ydim].values.astype(float)
-        values = var.values.astype(np.float32)
+        values = var.values.astype(np.float32, copy=False)
         attrs = dict(var.attrs)
         crs = _netcdf_crs(ds, var, xdim)
     if crs.is_geographic and spec.geographic:
         x = spec.wrap_lon(x)
-    order_x = np.argsort(x, kind="stable")
-    order_y = np.argsort(-y, kind="stable")
+    order_y, order_x = _ordering(-y), _ordering(x)
     x, y = x[order_x], y[order_y]
-    values = values[np.ix_(order_y, order_x)]
+    values = values[order_y][:, order_x]  # views when the rows and columns are in order or reversed
     dx, dy = _regular(x, path, xdim), _regular(y, path, ydim)
     transform = Affine(dx, 0, x[0] - dx / 2, 0, dy, y[0] - dy / 2)
     return SourceGrid(values, transform, crs, attrs, str(var.name))
+
+
+def _ordering(coord: np.ndarray) -> slice | np.ndarray:
+    """What sorts a coordinate ascending: a slice when it is already sorted or reversed, else the indices."""
+    steps = np.diff(coord)
+    if (steps >= 0).all():
+        return slice(None)
+    if (steps <= 0).all():
+        return slice(None, None, -1)
+    return np.argsort(coord, kind="stable")
 
 
 def _netcdf_crs(ds, var, xdim) -> rasterio.crs.CRS:
@@ -135,7 +144,7 @@ def resample(source: SourceGrid, spec, name: str = "") -> np.ndarray:
     """
     window = _aligned_window(source, spec)
     if window is not None:
-        return source.values[window].astype(np.float32)
+        return source.values[window].astype(np.float32, copy=False)
     target = np.full(spec.shape, np.nan, dtype=np.float32)
     source_cell = abs(source.transform.a * source.transform.e) ** 0.5
     same_kind = source.crs.is_geographic == spec.geographic
