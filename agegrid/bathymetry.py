@@ -1,28 +1,30 @@
 """Observed depth: elevation or depth detected from attributes and sign, positive down."""
 from __future__ import annotations
 
+from typing import Callable
+
 import numpy as np
 
 DEPTH_WORDS = ("depth", "bathymetry_depth")
 ELEVATION_WORDS = ("elevation", "height", "altitude", "topography", "surface_height")
 
 
-def to_depth(values: np.ndarray, attrs: dict, mode: str = "auto") -> tuple[np.ndarray, str]:
-    """Convert a bathymetry grid to depth positive down, saying what was assumed.
+def depth_sign(attrs: dict, mode: str = "auto", values: Callable[[], np.ndarray] | None = None) -> tuple[bool, str]:
+    """Whether a bathymetry grid holds depth (positive down) rather than elevation, and a sentence saying why.
 
     Parameters
     ----------
-    values : numpy.ndarray
-        The grid as read.
     attrs : dict
-        Its attributes (``standard_name``, ``long_name``, ``positive``, the variable name).
+        The grid's attributes (``standard_name``, ``long_name``, ``positive``, the variable name).
     mode : {"auto", "depth", "elevation"}
         ``auto`` decides from the attributes, then from the sign of the median.
+    values : callable, optional
+        Returns the grid; called only when neither ``mode`` nor the attributes decide.
     """
     if mode == "depth":
-        return values, "bathymetry read as depth (positive down), as set by depth.bathymetry_sign"
+        return True, "bathymetry read as depth (positive down), as set by depth.bathymetry_sign"
     if mode == "elevation":
-        return -values, "bathymetry read as elevation (negative down), as set by depth.bathymetry_sign"
+        return False, "bathymetry read as elevation (negative down), as set by depth.bathymetry_sign"
     positive = str(attrs.get("positive", "")).lower()
     if positive in ("down", "up"):
         is_depth = positive == "down"
@@ -34,9 +36,8 @@ def to_depth(values: np.ndarray, attrs: dict, mode: str = "auto") -> tuple[np.nd
         elif any(w in words for w in DEPTH_WORDS):
             is_depth, why = True, "its name/attributes say depth"
         else:
-            median = float(np.nanmedian(values))
+            median = float(np.nanmedian(values()))
             is_depth = median > 0
             why = f"no attribute says; the median value {median:.0f} is {'positive' if is_depth else 'negative'}"
-    depth = values if is_depth else -values
     kind = "depth (positive down)" if is_depth else "elevation (negative down)"
-    return depth, f"bathymetry read as {kind}: {why}"
+    return is_depth, f"bathymetry read as {kind}: {why}"

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import logging
 import sys
@@ -47,19 +48,20 @@ def cmd_validate(args) -> int:
 
     config = load_build_file(args.config)
     inputs = read_inputs(config)
-    layers, _, facts = compute_layers(config, inputs, Stages())
-    if inputs["profiles"] is not None:  # the magnetic check needs the grids: computed in memory, not written
-        import dask
-        import xarray as xr
+    with contextlib.ExitStack() as opened:
+        layers, _, facts = compute_layers(config, inputs, Stages(), opened)
+        if inputs["profiles"] is not None:  # the magnetic check needs the grids: computed in memory, not written
+            import dask
+            import xarray as xr
 
-        from agegrid.grid import GridSpec
-        from agegrid.pipeline import magnetic_check
+            from agegrid.grid import GridSpec
+            from agegrid.pipeline import magnetic_check
 
-        names = ("age", "half_rate", "magnetic_anomaly_predicted")
-        with dask.config.set(scheduler="threads"):
-            values = dask.compute(*[layers[n] for n in names])
-        ds = xr.Dataset({n: (("y", "x"), v) for n, v in zip(names, values)})
-        magnetic_check(config, inputs, ds, facts, None, None, GridSpec.from_config(config.grid))
+            names = ("age", "half_rate", "magnetic_anomaly_predicted")
+            with dask.config.set(scheduler="threads"):
+                values = dask.compute(*[layers[n] for n in names])
+            ds = xr.Dataset({n: (("y", "x"), v) for n, v in zip(names, values)})
+            magnetic_check(config, inputs, ds, facts, None, None, GridSpec.from_config(config.grid))
     summary = {"plan": plan(config), "qa": facts["qa"], "notes": facts["notes"],
                "age_model": facts["age_model"], "magnetic": facts.get("magnetic")}
     print(json.dumps(summary, indent=2, default=str))

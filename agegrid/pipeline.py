@@ -22,7 +22,7 @@ import xarray as xr
 
 from agegrid import __version__, thermal, timescale
 from agegrid.age import LAYERS, Settings, age_layers, build_age_model
-from agegrid.bathymetry import to_depth
+from agegrid.bathymetry import depth_sign
 from agegrid.cache import KEPT_NETCDF, BlockCache, fingerprint, up_to_date
 from agegrid.compartments import build_compartments, implied_fracture_zones
 from agegrid.control import build_control
@@ -32,7 +32,7 @@ from agegrid.io import atomic
 from agegrid.io.geotiff import CogWriter
 from agegrid.io.netcdf import dataset, encoding, limit_chunk_cache, open_netcdf, write_netcdf
 from agegrid.io.points import read_picks
-from agegrid.io.rasters import read_grid
+from agegrid.io.rasters import grid_blocks
 from agegrid.io.vectors import read_lines, read_polygons
 from agegrid.alignment import AlignmentSettings, check_profiles
 from agegrid.control import date_picks
@@ -146,8 +146,10 @@ def plan(config) -> dict:
             "writes": [str(p) for p in writes], "variables": names}
 
 
-def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[dict, dict, dict]:
-    """All output layers as lazy arrays, with their attributes and the facts for the manifest."""
+def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.ExitStack,
+                   cache=None) -> tuple[dict, dict, dict]:
+    """All output layers as lazy arrays, with their attributes and the facts for the manifest; input grids
+    read block by block stay open until ``opened`` closes."""
     spec = GridSpec.from_config(config.grid)
     spec.check_size(LAYERS_IN_MEMORY, config.source)
     facts: dict = {"notes": []}
@@ -212,20 +214,19 @@ def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[di
             attrs[f"isotherm_depth_{name}"] = {**attributes(f"isotherm_depth_{name}"), "isotherm_c": t_iso}
     if config.inputs.bathymetry:
         with stages("observed depth"):
-            values, source_attrs = read_grid(config.inputs.bathymetry, spec)
-            depth, statement = to_depth(values, source_attrs, config.depth.bathymetry_sign)
-            del values  # one grid-sized array is held from here on (two with a sediment correction)
+            # grids on the build's lattice are read block by block in the streaming pass (see grid_blocks)
+            observed, source_attrs = grid_blocks(config.inputs.bathymetry, spec, opened)
+            is_depth, statement = depth_sign(source_attrs, config.depth.bathymetry_sign, observed.compute)
             facts["notes"].append(statement)
             log.info(statement)
-            layers["observed_depth"] = corrected = da.from_array(np.asarray(depth, np.float32), chunks=spec.chunks)
+            layers["observed_depth"] = corrected = observed if is_depth else -observed
             attrs["observed_depth"] = {**attributes("observed_depth"), "comment": statement}
             if config.inputs.sediment:
-                thickness, _ = read_grid(config.inputs.sediment, spec)
+                thickness, _ = grid_blocks(config.inputs.sediment, spec, opened)
                 lith = lithology_from_config(config.sediment)
-                correction = lith.correction(thickness).astype(np.float32)
-                corrected = da.from_array(depth + np.where(np.isfinite(correction), correction, np.float32(0)),
-                                          chunks=spec.chunks)
-                layers["sediment_correction"] = da.from_array(correction, chunks=spec.chunks)
+                correction = _elementwise(lith.correction, thickness)
+                corrected = corrected + da.where(da.isfinite(correction), correction, np.float32(0))
+                layers["sediment_correction"] = correction
                 attrs["sediment_correction"] = {**attributes("sediment_correction"),
                                                 "comment": f"Airy unloading, {lith.name}: {lith.reference}"}
                 facts["sediment"] = {k: getattr(lith, k) for k in ("name", "surface_porosity", "compaction_per_km",
@@ -252,9 +253,8 @@ def compute_layers(config, inputs: dict, stages: Stages, cache=None) -> tuple[di
                                  "field_declination": settings.field_declination,
                                  "remanence": "geocentric axial dipole at the present latitude (tan I = 2 tan lat)"}
             if config.inputs.magnetic_grid:
-                observed, _ = read_grid(config.inputs.magnetic_grid, spec)
-                layers["magnetic_residual"] = (da.from_array(observed, chunks=spec.chunks)
-                                               - layers["magnetic_anomaly_predicted"]).astype(np.float32)
+                observed, _ = grid_blocks(config.inputs.magnetic_grid, spec, opened)
+                layers["magnetic_residual"] = (observed - layers["magnetic_anomaly_predicted"]).astype(np.float32)
                 attrs["magnetic_residual"] = attributes("magnetic_residual")
     facts["timescale"] = scale.describe()
     facts["models"] = {name: m.describe() for name, m in _models(config).items()}
@@ -366,7 +366,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
     out_dir = Path(config.output.directory)
     out_dir.mkdir(parents=True, exist_ok=True)
     limit_chunk_cache()
-    with BuildLock(out_dir):
+    with BuildLock(out_dir), contextlib.ExitStack() as opened:  # opened: input grids read block by block
         removed = atomic.clean_stale(out_dir)
         if removed:
             log.info("removed %d temporary file(s) left by an interrupted build", len(removed))
@@ -382,7 +382,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         cache = BlockCache(out_dir, enabled=not force)
         with stages("read inputs"):
             inputs = read_inputs(config)
-        layers, attrs, facts = compute_layers(config, inputs, stages, cache)
+        layers, attrs, facts = compute_layers(config, inputs, stages, opened, cache)
         spec = GridSpec.from_config(config.grid)
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
         samples = Samples(spec, _sampled_layers(config), TABLE_CELLS)

@@ -1,4 +1,5 @@
 """Depth-check: observed depth, sign detection, resampling, residuals against a known swell, statistics."""
+import contextlib
 import csv
 
 import numpy as np
@@ -7,10 +8,11 @@ import rasterio
 import xarray as xr
 from affine import Affine
 
-from agegrid.bathymetry import to_depth
+from agegrid.bathymetry import depth_sign
 from agegrid.demo_picks.make_demo import BASIN, SWELL
 from agegrid.grid import GridSpec
-from agegrid.io.rasters import read_grid
+from agegrid.errors import BadInput
+from agegrid.io.rasters import grid_blocks, read_grid
 from agegrid.residual import binned_statistics, fit_sqrt_age
 from agegrid.sphere import distance_km
 
@@ -60,14 +62,16 @@ def test_fit_recovers_known_law():
     ({}, np.array([4000.0, 3000.0]), True),
 ])
 def test_sign_detection(attrs, values, expect_depth):
-    depth, statement = to_depth(values, attrs)
-    assert np.all(depth > 0)
-    assert ("as depth" in statement) == expect_depth
+    read = []
+    is_depth, statement = depth_sign(attrs, values=lambda: read.append(1) or values)
+    assert np.all((values if is_depth else -values) > 0)
+    assert is_depth == expect_depth and ("as depth" in statement) == expect_depth
+    assert bool(read) == (not attrs)  # the values are read only when no attribute says
 
 
 def test_sign_override():
-    depth, statement = to_depth(np.array([-3000.0]), {"positive": "down"}, "elevation")
-    assert depth[0] == 3000 and "depth.bathymetry_sign" in statement
+    is_depth, statement = depth_sign({"positive": "down"}, "elevation")
+    assert not is_depth and "depth.bathymetry_sign" in statement
 
 
 def test_geotiff_input_block_average_and_bilinear(tmp_path):
@@ -105,6 +109,58 @@ def test_geotiff_on_the_build_lattice_is_read_as_is(tmp_path):
     assert np.array_equal(values, field[10:30, 10:30])
     values, _ = read_grid(tmp_path / "shifted.tif", spec)
     assert np.allclose(values, plane[10:30, 9:29] + 5.0, atol=1e-3)  # half a cell east of column k - 1
+
+
+def _lattice_sources(tmp_path, field):
+    """The same field (rows north to south, 0.1-degree cells from 0 E, 4 N) as a GeoTIFF, a NetCDF stored north
+    to south and a NetCDF stored south to north."""
+    ny, nx = field.shape
+    with rasterio.open(tmp_path / "f.tif", "w", driver="GTiff", width=nx, height=ny, count=1, dtype="float32",
+                       crs="EPSG:4326", transform=Affine(0.1, 0, 0.0, 0, -0.1, 4.0)) as dst:
+        dst.write(field, 1)
+    lat, lon = 4.0 - 0.05 - 0.1 * np.arange(ny), 0.05 + 0.1 * np.arange(nx)
+    attrs = {"units": "m", "positive": "down"}
+    xr.Dataset({"z": (("lat", "lon"), field, attrs)}, coords={"lat": lat, "lon": lon}).to_netcdf(tmp_path / "n.nc")
+    xr.Dataset({"z": (("lat", "lon"), field[::-1], attrs)}, coords={"lat": lat[::-1], "lon": lon}).to_netcdf(
+        tmp_path / "s.nc")
+    return [tmp_path / "f.tif", tmp_path / "n.nc", tmp_path / "s.nc"]
+
+
+def test_grid_on_the_lattice_is_read_block_by_block(tmp_path):
+    # blocks of 7 cells (ragged at the edges) read as the pass asks give the cells read whole, exactly; the
+    # task graph holds no array of the grid's size
+    field = np.random.default_rng(2).normal(size=(40, 60)).astype(np.float32)
+    field[12:15, :] = np.nan
+    spec = GridSpec((1.0, 3.0, 1.0, 3.0), 0.1, chunk=7)  # rows 10..29, columns 10..29
+    for path in _lattice_sources(tmp_path, field):
+        with contextlib.ExitStack() as opened:
+            lazy, attrs = grid_blocks(path, spec, opened)
+            values = lazy.compute()
+        assert lazy.chunksize == spec.chunks
+        assert all(not isinstance(v, np.ndarray) or v.size < 49 for v in dict(lazy.__dask_graph__()).values())
+        np.testing.assert_array_equal(values, field[10:30, 10:30], err_msg=str(path))
+        np.testing.assert_array_equal(read_grid(path, spec)[0], field[10:30, 10:30], err_msg=str(path))
+    shifted = GridSpec((1.05, 2.95, 1.05, 2.95), 0.1, chunk=7)  # off the lattice: resampled whole, as read_grid
+    with contextlib.ExitStack() as opened:
+        lazy, _ = grid_blocks(tmp_path / "n.nc", shifted, opened)
+        np.testing.assert_array_equal(lazy.compute(), read_grid(tmp_path / "n.nc", shifted)[0])
+
+
+def test_grid_without_values_over_the_build_is_refused(tmp_path):
+    field = np.full((40, 60), np.nan, np.float32)
+    field[0, 0] = 5.0  # outside the build grid
+    spec = GridSpec((1.0, 3.0, 1.0, 3.0), 0.1, chunk=7)
+    for path in _lattice_sources(tmp_path, field):
+        with pytest.raises(BadInput, match="no finite values") as caught, contextlib.ExitStack() as opened:
+            grid_blocks(path, spec, opened)
+        assert str(path) in str(caught.value)
+        with pytest.raises(BadInput, match="no finite values"):
+            read_grid(path, spec)
+    field[27, 13] = 1.0  # one value, in a row the first probes pass over: found strip by strip
+    for path in _lattice_sources(tmp_path, field):  # the files are rewritten: the readers released them
+        with contextlib.ExitStack() as opened:
+            lazy, _ = grid_blocks(path, spec, opened)
+            assert np.nansum(lazy.compute()) == 1.0
 
 
 def test_netcdf_input_other_longitude_convention(tmp_path):

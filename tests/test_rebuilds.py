@@ -9,6 +9,7 @@ import xarray as xr
 
 from agegrid import timescale
 from agegrid.cli import main
+from agegrid.grid import GridSpec
 from agegrid.synthetic import SyntheticBasin
 from tests.helpers import basin_build, write_picks
 
@@ -99,6 +100,13 @@ def test_local_cluster_equals_local_threads(tmp_path, survey):
     basin, records = survey
     local = basin_build(tmp_path / "local", basin, records=records, spacing=0.2, chunk=64)
     remote = basin_build(tmp_path / "remote", basin, records=records, spacing=0.2, chunk=64)
+    # a bathymetry on the build's lattice, stored south to north: read block by block, in the workers too
+    spec = GridSpec(tuple(basin.region(0.5)), 0.2, chunk=64)
+    depth = np.linspace(2500, 5500, spec.size, dtype=np.float32).reshape(spec.shape)
+    for build in (local, remote):
+        xr.Dataset({"depth": (("lat", "lon"), depth[::-1], {"units": "m", "positive": "down"})},
+                   coords={"lat": spec.y[::-1], "lon": spec.x}).to_netcdf(build.parent / "bathymetry.nc")
+        build.write_text(build.read_text().replace("[grid]", 'bathymetry = "bathymetry.nc"\n[grid]'))
     assert main(["build", str(local), "--quiet"]) == 0
     cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
                            dashboard_address="127.0.0.1:0")
@@ -107,6 +115,8 @@ def test_local_cluster_equals_local_threads(tmp_path, survey):
     finally:
         cluster.close()
     assert_same(arrays(tmp_path / "local" / "out" / "basin.nc"), arrays(tmp_path / "remote" / "out" / "basin.nc"))
+    with xr.open_dataset(tmp_path / "remote" / "out" / "basin.nc") as ds:
+        np.testing.assert_array_equal(ds["observed_depth"].values, depth)
     manifest = json.loads((tmp_path / "remote" / "out" / "manifest.json").read_text())
     assert manifest["scheduler"]["kind"] == "distributed"
 

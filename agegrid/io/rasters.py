@@ -1,17 +1,24 @@
 """Input grids (NetCDF or GeoTIFF) read and resampled onto the build's grid.
 
 Block average where the input is finer than the grid, bilinear where it is coarser; another CRS is
-reprojected by GDAL (rasterio.warp).
+reprojected by GDAL (rasterio.warp). A grid on the build grid's own lattice is read as is, and only the
+cells the build covers; :func:`grid_blocks` reads it block by block as the streaming pass asks, so that
+no grid-sized copy is held.
 """
 from __future__ import annotations
 
+import contextlib
+import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
+import dask.array as da
 import numpy as np
 import rasterio
 from affine import Affine
 from rasterio.warp import Resampling, reproject
+from rasterio.windows import Window
 
 from agegrid.errors import BadInput
 
@@ -21,13 +28,22 @@ Y_NAMES = ("lat", "latitude", "y", "northing")
 
 @dataclass
 class SourceGrid:
-    """A 2-D grid as read: values north row first, its transform and CRS, and its attributes."""
+    """A 2-D grid as opened: its shape, transform, CRS and attributes, and ``read``, which returns the cells
+    of given rows and columns (slices; north row first, west column first) as float32 with NaN for no data."""
 
-    values: np.ndarray
+    read: Callable[[slice, slice], np.ndarray]
+    shape: tuple[int, int]
     transform: Affine
     crs: rasterio.crs.CRS
     attrs: dict = field(default_factory=dict)
     name: str = ""
+    close: Callable[[], None] = lambda: None
+    """Releases the file (reading again reopens it)."""
+
+    @property
+    def values(self) -> np.ndarray:
+        """Every cell."""
+        return self.read(slice(None), slice(None))
 
 
 def _regular(coord: np.ndarray, path, name) -> float:
@@ -44,7 +60,7 @@ def _open_netcdf(path: Path, spec) -> SourceGrid:
         ds = open_netcdf(path, decode_times=False, mask_and_scale=True)
     except Exception as exc:  # netCDF4/h5py raise many kinds for a damaged or foreign file
         raise BadInput(f"not a readable NetCDF or GeoTIFF file ({type(exc).__name__}: {exc})", path) from None
-    with ds:
+    try:
         candidates = [v for v in ds.data_vars.values() if v.ndim == 2 and v.dtype.kind in "fiu"]
         for var in candidates:
             dims = [d.lower() for d in var.dims]
@@ -57,17 +73,47 @@ def _open_netcdf(path: Path, spec) -> SourceGrid:
             raise BadInput(f"variable {var.name!r} has no coordinate values for {ydim}/{xdim}", path)
         x = ds[xdim].values.astype(float)
         y = ds[ydim].values.astype(float)
-        values = var.values.astype(np.float32, copy=False)
         attrs = dict(var.attrs)
         crs = _netcdf_crs(ds, var, xdim)
-    if crs.is_geographic and spec.geographic:
-        x = spec.wrap_lon(x)
-    order_y, order_x = _ordering(-y), _ordering(x)
-    x, y = x[order_x], y[order_y]
-    values = values[order_y][:, order_x]  # views when the rows and columns are in order or reversed
-    dx, dy = _regular(x, path, xdim), _regular(y, path, ydim)
+        if crs.is_geographic and spec.geographic:
+            x = spec.wrap_lon(x)
+        order_y, order_x = _ordering(-y), _ordering(x)
+        x, y = x[order_x], y[order_y]
+        dx, dy = _regular(x, path, xdim), _regular(y, path, ydim)
+        close = ds.close
+        if isinstance(order_y, slice) and isinstance(order_x, slice):
+            read = _VariableWindows(var, path, order_y.step == -1, order_x.step == -1)
+        else:  # columns reordered (a 0-360 grid on a -180-180 build): read whole, once
+            values = var.values.astype(np.float32, copy=False)[order_y][:, order_x]
+            ds.close()
+
+            def read(rows: slice, cols: slice) -> np.ndarray:
+                return values[rows, cols]
+    except BaseException:
+        ds.close()
+        raise
     transform = Affine(dx, 0, x[0] - dx / 2, 0, dy, y[0] - dy / 2)
-    return SourceGrid(values, transform, crs, attrs, str(var.name))
+    return SourceGrid(read, (len(y), len(x)), transform, crs, attrs, str(var.name), close)
+
+
+class _VariableWindows:
+    """Cells of a NetCDF variable (opened lazily by xarray, which also decodes them) by rows and columns of
+    the grid sorted north to south and west to east, for a variable stored in that order or reversed."""
+
+    def __init__(self, var, path: Path, rows_reversed: bool, cols_reversed: bool):
+        self.var, self.path, self.reversed = var, path, (rows_reversed, cols_reversed)
+
+    def __call__(self, rows: slice, cols: slice) -> np.ndarray:
+        stored = []
+        for index, n, flip in zip((rows, cols), self.var.shape, self.reversed):
+            start, stop, _ = index.indices(n)
+            stored.append(slice(n - stop, n - start) if flip else slice(start, stop))
+        try:
+            values = self.var[tuple(stored)].values.astype(np.float32, copy=False)
+        except (OSError, RuntimeError, ValueError) as exc:  # a damaged chunk: netCDF4 raises these
+            raise BadInput(f"cannot read rows {stored[0].start}-{stored[0].stop - 1} of {self.var.name!r} "
+                           f"({type(exc).__name__}: {exc})", self.path) from None
+        return values[::-1 if self.reversed[0] else 1, ::-1 if self.reversed[1] else 1]
 
 
 def _ordering(coord: np.ndarray) -> slice | np.ndarray:
@@ -94,16 +140,33 @@ def _netcdf_crs(ds, var, xdim) -> rasterio.crs.CRS:
 def _open_geotiff(path: Path, spec) -> SourceGrid:
     try:
         with rasterio.open(path) as src:
-            values = src.read(1, masked=True).astype(np.float32).filled(np.nan)
             if src.crs is None:
                 raise BadInput("GeoTIFF has no CRS", path)
             attrs = dict(src.tags(1))
             attrs.update(src.tags())
             if src.units and src.units[0]:
                 attrs.setdefault("units", src.units[0])
-            return SourceGrid(values, src.transform, src.crs, attrs, src.descriptions[0] or "")
+            shape, transform, crs, name = (src.height, src.width), src.transform, src.crs, src.descriptions[0] or ""
     except rasterio.errors.RasterioIOError as exc:
         raise BadInput(f"not a readable NetCDF or GeoTIFF file ({exc})", path) from None
+    return SourceGrid(_BandWindows(path, shape), shape, transform, crs, attrs, name)
+
+
+class _BandWindows:
+    """Cells of a GeoTIFF's first band by rows and columns (the file opened for each read, so that threads
+    never share a GDAL dataset)."""
+
+    def __init__(self, path: Path, shape: tuple[int, int]):
+        self.path, self.shape = path, shape
+
+    def __call__(self, rows: slice, cols: slice) -> np.ndarray:
+        (r0, r1, _), (c0, c1, _) = rows.indices(self.shape[0]), cols.indices(self.shape[1])
+        try:
+            with rasterio.open(self.path) as src:
+                band = src.read(1, window=Window(c0, r0, c1 - c0, r1 - r0), masked=True)
+        except rasterio.errors.RasterioIOError as exc:
+            raise BadInput(f"cannot read rows {r0}-{r1 - 1} ({exc})", self.path) from None
+        return band.astype(np.float32).filled(np.nan)
 
 
 def open_grid(path: str | Path, spec) -> SourceGrid:
@@ -132,19 +195,20 @@ def _aligned_window(source: SourceGrid, spec) -> tuple[slice, slice] | None:
     if abs(col - c0) > 1e-6 or abs(row - r0) > 1e-6:
         return None
     ny, nx = spec.shape
-    if r0 < 0 or c0 < 0 or r0 + ny > source.values.shape[0] or c0 + nx > source.values.shape[1]:
+    if r0 < 0 or c0 < 0 or r0 + ny > source.shape[0] or c0 + nx > source.shape[1]:
         return None
     return slice(r0, r0 + ny), slice(c0, c0 + nx)
 
 
-def resample(source: SourceGrid, spec, name: str = "") -> np.ndarray:
+def resample(source: SourceGrid, spec) -> np.ndarray:
     """Resample a source grid onto the build grid (float32, NaN where the source has no data).
 
-    A source on the build grid's own lattice (same CRS and cell size, cell edges aligned) is read as is.
+    A source on the build grid's own lattice (same CRS and cell size, cell edges aligned) is read as is,
+    only the cells the build grid covers.
     """
     window = _aligned_window(source, spec)
     if window is not None:
-        return source.values[window].astype(np.float32, copy=False)
+        return source.read(*window)
     target = np.full(spec.shape, np.nan, dtype=np.float32)
     source_cell = abs(source.transform.a * source.transform.e) ** 0.5
     same_kind = source.crs.is_geographic == spec.geographic
@@ -156,9 +220,61 @@ def resample(source: SourceGrid, spec, name: str = "") -> np.ndarray:
     return target
 
 
+#: The message of an input grid without a finite value where the build grid lies.
+EMPTY = "grid holds no finite values over the build grid's region"
+
+
 def read_grid(path: str | Path, spec) -> tuple[np.ndarray, dict]:
     """Read an input grid resampled onto the build grid, with the source's attributes."""
     source = open_grid(path, spec)
-    if not np.isfinite(source.values).any():
-        raise BadInput("grid holds no finite values", path)
-    return resample(source, spec), {**source.attrs, "variable": source.name}
+    try:
+        return _resampled(source, spec, path), {**source.attrs, "variable": source.name}
+    finally:
+        source.close()
+
+
+def _resampled(source: SourceGrid, spec, path) -> np.ndarray:
+    values = resample(source, spec)
+    if not np.isfinite(values).any():
+        raise BadInput(EMPTY, path)
+    return values
+
+
+def grid_blocks(path: str | Path, spec, opened: contextlib.ExitStack) -> tuple[da.Array, dict]:
+    """An input grid on the build grid as a dask array chunked like it, with the source's attributes.
+
+    A source on the build grid's lattice is read block by block when the blocks are computed (nothing
+    grid-sized is held) and its file is released when ``opened`` closes; any other is resampled whole
+    first (:func:`read_grid`).
+    """
+    source = open_grid(path, spec)
+    attrs = {**source.attrs, "variable": source.name}
+    window = _aligned_window(source, spec)
+    if window is None:
+        try:
+            return da.from_array(_resampled(source, spec, path), chunks=spec.chunks), attrs
+        finally:
+            source.close()
+    opened.callback(source.close)
+    rows, cols = window
+    if not _any_finite(source, rows, cols):
+        raise BadInput(EMPTY, path)
+    token = uuid.uuid4().hex  # dask would otherwise hash the reader
+    template = da.empty(spec.shape, chunks=spec.chunks, dtype=np.float32, name=f"input-cells-{token}")
+
+    def block(_, block_info=None):
+        (r0, r1), (c0, c1) = block_info[0]["array-location"]
+        return source.read(slice(rows.start + r0, rows.start + r1), slice(cols.start + c0, cols.start + c1))
+
+    return da.map_blocks(block, template, dtype=np.float32, meta=np.empty((0, 0), np.float32),
+                         name=f"input-grid-{token}"), attrs
+
+
+def _any_finite(source: SourceGrid, rows: slice, cols: slice, probes: int = 8, strip: int = 256) -> bool:
+    """Whether a source has a finite value in the given rows and columns: a few rows spread over them first
+    (enough for any real grid), then, only if all of those are empty, strip by strip."""
+    for r in np.linspace(rows.start, rows.stop - 1, min(probes, rows.stop - rows.start)).astype(int):
+        if np.isfinite(source.read(slice(r, r + 1), cols)).any():
+            return True
+    return any(np.isfinite(source.read(slice(r, min(r + strip, rows.stop)), cols)).any()
+               for r in range(rows.start, rows.stop, strip))
