@@ -7,6 +7,7 @@ import pytest
 import rasterio
 import xarray as xr
 from affine import Affine
+from rasterio.warp import Resampling, reproject
 
 from agegrid.bathymetry import depth_sign
 from agegrid.demo_picks.make_demo import BASIN, SWELL
@@ -144,6 +145,43 @@ def test_grid_on_the_lattice_is_read_block_by_block(tmp_path):
     with contextlib.ExitStack() as opened:
         lazy, _ = grid_blocks(tmp_path / "n.nc", shifted, opened)
         np.testing.assert_array_equal(lazy.compute(), read_grid(tmp_path / "n.nc", shifted)[0])
+
+
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")  # GDAL's in-memory copies
+@pytest.mark.parametrize("cell", [0.03, 0.25])  # finer (block average) and coarser (bilinear) than the grid
+def test_grid_off_the_lattice_is_resampled_block_by_block(tmp_path, cell):
+    # each block resampled from the source cells around it gives the cells of the whole grid resampled at
+    # once: GDAL's warp of the whole is the reference, given the scale, which one CRS keeps constant (GDAL
+    # otherwise estimates it per chunk, from the chunk's extent); the source reaches past the grid on two sides
+    rng = np.random.default_rng(7)
+    ny, nx = int(3.0 / cell), int(4.0 / cell)
+    field = rng.normal(size=(ny, nx)).astype(np.float32)
+    field[rng.random(field.shape) < 0.05] = np.nan
+    path = tmp_path / "src.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=nx, height=ny, count=1, dtype="float32", nodata=np.nan,
+                       crs="EPSG:4326", transform=Affine(cell, 0, 0.013, 0, -cell, 3.007)) as dst:
+        dst.write(field, 1)
+    spec = GridSpec((1.0, 4.5, 0.5, 3.5), 0.1, chunk=6)
+    whole = np.full(spec.shape, np.nan, np.float32)
+    reproject(field, whole, src_transform=Affine(cell, 0, 0.013, 0, -cell, 3.007), src_crs="EPSG:4326",
+              src_nodata=np.nan, dst_transform=spec.transform, dst_crs="EPSG:4326", dst_nodata=np.nan,
+              resampling=Resampling.average if cell < 0.1 else Resampling.bilinear, XSCALE=cell / 0.1,
+              YSCALE=cell / 0.1)
+    with contextlib.ExitStack() as opened:
+        lazy, _ = grid_blocks(path, spec, opened)
+        blocks = lazy.compute()
+    assert np.isfinite(whole).mean() > 0.5
+    np.testing.assert_array_equal(blocks, whole)
+    np.testing.assert_array_equal(read_grid(path, spec)[0], whole)
+
+
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")  # the file is made without one
+def test_geotiff_without_georeferencing_is_refused(tmp_path):
+    path = tmp_path / "bare.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=4, height=3, count=1, dtype="float32", crs="EPSG:4326") as dst:
+        dst.write(np.ones((3, 4), np.float32), 1)
+    with pytest.raises(BadInput, match="no geotransform"):
+        read_grid(path, GridSpec((0.0, 2.0, 0.0, 2.0), 0.5))
 
 
 def test_grid_without_values_over_the_build_is_refused(tmp_path):

@@ -2,13 +2,14 @@
 
 Block average where the input is finer than the grid, bilinear where it is coarser; another CRS is
 reprojected by GDAL (rasterio.warp). A grid on the build grid's own lattice is read as is, and only the
-cells the build covers; :func:`grid_blocks` reads it block by block as the streaming pass asks, so that
-no grid-sized copy is held.
+cells the build covers; :func:`grid_blocks` reads a grid in the build's CRS block by block as the streaming
+pass asks (each block from the source cells around it), so that no grid-sized copy is held.
 """
 from __future__ import annotations
 
 import contextlib
 import uuid
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -21,6 +22,10 @@ from rasterio.warp import Resampling, reproject
 from rasterio.windows import Window
 
 from agegrid.errors import BadInput
+
+# GDAL's in-memory copy of an array reprojected on a dask thread is made before its transform is set, and
+# rasterio warns that it has none; a GeoTIFF without georeferencing is refused in _open_geotiff instead
+warnings.filterwarnings("ignore", "Dataset has no geotransform", rasterio.errors.NotGeoreferencedWarning)
 
 X_NAMES = ("lon", "longitude", "x", "easting")
 Y_NAMES = ("lat", "latitude", "y", "northing")
@@ -142,6 +147,8 @@ def _open_geotiff(path: Path, spec) -> SourceGrid:
         with rasterio.open(path) as src:
             if src.crs is None:
                 raise BadInput("GeoTIFF has no CRS", path)
+            if src.transform.is_identity:
+                raise BadInput("GeoTIFF has no geotransform (cell size and origin)", path)
             attrs = dict(src.tags(1))
             attrs.update(src.tags())
             if src.units and src.units[0]:
@@ -200,24 +207,52 @@ def _aligned_window(source: SourceGrid, spec) -> tuple[slice, slice] | None:
     return slice(r0, r0 + ny), slice(c0, c0 + nx)
 
 
-def resample(source: SourceGrid, spec) -> np.ndarray:
-    """Resample a source grid onto the build grid (float32, NaN where the source has no data).
+def resample(source: SourceGrid, spec, rows: slice = slice(None), cols: slice = slice(None)) -> np.ndarray:
+    """The build grid's cells in ``rows`` and ``cols`` (default: all) from a source grid (float32, NaN where
+    the source has no data).
 
-    A source on the build grid's own lattice (same CRS and cell size, cell edges aligned) is read as is,
-    only the cells the build grid covers.
+    A source on the build grid's own lattice (same CRS and cell size, cell edges aligned) is read as is; in
+    the same CRS only the source cells around the asked ones are read (two cells beyond, for the kernels).
     """
+    (r0, r1, _), (c0, c1, _) = rows.indices(spec.shape[0]), cols.indices(spec.shape[1])
     window = _aligned_window(source, spec)
     if window is not None:
-        return source.read(*window)
-    target = np.full(spec.shape, np.nan, dtype=np.float32)
+        return source.read(slice(window[0].start + r0, window[0].start + r1),
+                           slice(window[1].start + c0, window[1].start + c1))
+    target = np.full((r1 - r0, c1 - c0), np.nan, dtype=np.float32)
+    dst_transform = spec.transform @ Affine.translation(c0, r0)
+    covering = _covering(source, spec, dst_transform, target.shape)
+    scales = {}
+    if covering is None:
+        covering = slice(0, source.shape[0]), slice(0, source.shape[1])
+    else:  # in one CRS the scale is the same everywhere: given, so that GDAL does not work it out per chunk
+        scales = {"XSCALE": abs(source.transform.a / dst_transform.a), "YSCALE": abs(source.transform.e / dst_transform.e)}
+    if covering[0].start >= covering[0].stop or covering[1].start >= covering[1].stop:
+        return target
     source_cell = abs(source.transform.a * source.transform.e) ** 0.5
     same_kind = source.crs.is_geographic == spec.geographic
     finer = same_kind and source_cell < spec.spacing * 0.999
     reproject(
-        source=source.values, destination=target, src_transform=source.transform, src_crs=source.crs,
-        src_nodata=np.nan, dst_transform=spec.transform, dst_crs=rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()),
-        dst_nodata=np.nan, resampling=Resampling.average if finer else Resampling.bilinear)
+        source=source.read(*covering), destination=target,
+        src_transform=source.transform @ Affine.translation(covering[1].start, covering[0].start),
+        src_crs=source.crs, src_nodata=np.nan, dst_transform=dst_transform,
+        dst_crs=rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()), dst_nodata=np.nan,
+        resampling=Resampling.average if finer else Resampling.bilinear, **scales)
     return target
+
+
+def _covering(source: SourceGrid, spec, dst_transform: Affine, shape: tuple[int, int],
+              margin: int = 2) -> tuple[slice, slice] | None:
+    """The source's rows and columns under a window of the build grid (``dst_transform``, ``shape``), with
+    ``margin`` cells around; None when the source is in another CRS or rotated (all of it is then read)."""
+    src = source.transform
+    if src.b or src.d or source.crs != rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()):
+        return None
+    ny, nx = shape
+    cols = sorted((x - src.c) / src.a for x in (dst_transform.c, dst_transform.c + nx * dst_transform.a))
+    rows = sorted((y - src.f) / src.e for y in (dst_transform.f, dst_transform.f + ny * dst_transform.e))
+    return (slice(max(int(np.floor(rows[0])) - margin, 0), min(int(np.ceil(rows[1])) + margin, source.shape[0])),
+            slice(max(int(np.floor(cols[0])) - margin, 0), min(int(np.ceil(cols[1])) + margin, source.shape[1])))
 
 
 #: The message of an input grid without a finite value where the build grid lies.
@@ -243,28 +278,27 @@ def _resampled(source: SourceGrid, spec, path) -> np.ndarray:
 def grid_blocks(path: str | Path, spec, opened: contextlib.ExitStack) -> tuple[da.Array, dict]:
     """An input grid on the build grid as a dask array chunked like it, with the source's attributes.
 
-    A source on the build grid's lattice is read block by block when the blocks are computed (nothing
-    grid-sized is held) and its file is released when ``opened`` closes; any other is resampled whole
-    first (:func:`read_grid`).
+    A source in the build's CRS is read and resampled block by block when the blocks are computed (nothing
+    grid-sized is held; the cells of a block are those :func:`resample` gives for the whole grid) and its
+    file is released when ``opened`` closes; one in another CRS is resampled whole first.
     """
     source = open_grid(path, spec)
     attrs = {**source.attrs, "variable": source.name}
-    window = _aligned_window(source, spec)
-    if window is None:
+    covering = _aligned_window(source, spec) or _covering(source, spec, spec.transform, spec.shape)
+    if covering is None:
         try:
             return da.from_array(_resampled(source, spec, path), chunks=spec.chunks), attrs
         finally:
             source.close()
     opened.callback(source.close)
-    rows, cols = window
-    if not _any_finite(source, rows, cols):
+    if not _any_finite(source, *covering):
         raise BadInput(EMPTY, path)
     token = uuid.uuid4().hex  # dask would otherwise hash the reader
     template = da.empty(spec.shape, chunks=spec.chunks, dtype=np.float32, name=f"input-cells-{token}")
 
     def block(_, block_info=None):
         (r0, r1), (c0, c1) = block_info[0]["array-location"]
-        return source.read(slice(rows.start + r0, rows.start + r1), slice(cols.start + c0, cols.start + c1))
+        return resample(source, spec, slice(r0, r1), slice(c0, c1))
 
     return da.map_blocks(block, template, dtype=np.float32, meta=np.empty((0, 0), np.float32),
                          name=f"input-grid-{token}"), attrs
@@ -273,6 +307,8 @@ def grid_blocks(path: str | Path, spec, opened: contextlib.ExitStack) -> tuple[d
 def _any_finite(source: SourceGrid, rows: slice, cols: slice, probes: int = 8, strip: int = 256) -> bool:
     """Whether a source has a finite value in the given rows and columns: a few rows spread over them first
     (enough for any real grid), then, only if all of those are empty, strip by strip."""
+    if rows.start >= rows.stop or cols.start >= cols.stop:
+        return False
     for r in np.linspace(rows.start, rows.stop - 1, min(probes, rows.stop - rows.start)).astype(int):
         if np.isfinite(source.read(slice(r, r + 1), cols)).any():
             return True
