@@ -180,7 +180,8 @@ def open_grid(path: str | Path, spec) -> SourceGrid:
     """Open a NetCDF or GeoTIFF grid (by content, whatever its ending)."""
     path = Path(path)
     try:
-        head = path.read_bytes()[:8]
+        with open(path, "rb") as fh:
+            head = fh.read(8)  # the format's signature (not the whole file: inputs may be gigabytes)
     except FileNotFoundError:
         raise BadInput("file not found", path) from None
     if head[:4] in (b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+"):
