@@ -1,5 +1,7 @@
 """Outputs: CF-1.8 NetCDF (IOOS compliance-checker), COG read back by GDAL (rasterio), manifest."""
+import hashlib
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -85,14 +87,25 @@ def test_manifest(demo_build):
     manifest = json.loads((demo_build / "manifest.json").read_text())
     for key in ("inputs", "config", "versions", "timings_s", "timescale", "models", "qa", "outputs", "caution"):
         assert key in manifest
-    for entry in manifest["inputs"].values():
-        assert entry["sha256"] == sha256(Path(entry["path"]))
+    for entry in manifest["inputs"].values():  # hashlib over the whole file: the reference
+        assert entry["sha256"] == hashlib.sha256(Path(entry["path"]).read_bytes()).hexdigest()
     for entry in manifest["outputs"]:
-        assert entry["sha256"] == sha256(Path(entry["path"])), entry["path"]
+        assert entry["sha256"] == hashlib.sha256(Path(entry["path"]).read_bytes()).hexdigest(), entry["path"]
     assert manifest["timescale"]["name"] == "CK95"
     assert manifest["models"]["gdh1"]["parameters"]["decay_per_myr"] == 0.0278
     assert manifest["timings_s"]["total"] > 0
     assert {"netcdf", "geotiff"} == set(manifest["config"]["output"]["formats"])
+
+
+def test_file_hash_follows_the_file(tmp_path):
+    # remembered while the file is unchanged, computed again when it changes (same size, new content)
+    path = tmp_path / "f.bin"
+    path.write_bytes(b"a" * 1000)
+    assert sha256(path) == hashlib.sha256(b"a" * 1000).hexdigest()
+    stat = path.stat()
+    path.write_bytes(b"b" * 1000)
+    os.utime(path, ns=(stat.st_atime_ns, stat.st_mtime_ns + 10**6))  # a write at least a millisecond later
+    assert sha256(path) == hashlib.sha256(b"b" * 1000).hexdigest()
 
 
 def test_failed_build_leaves_outputs_alone(demo_copy):
@@ -101,10 +114,10 @@ def test_failed_build_leaves_outputs_alone(demo_copy):
     folder = demo_copy.parent
     assert main(["build", str(demo_copy), "--quiet"]) == 0
     out = folder / "out"
-    before = {p.name: sha256(p) for p in out.iterdir() if p.is_file()}
+    before = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in out.iterdir() if p.is_file()}
     (folder / "picks.csv").write_text("lon,lat,age_ma\n1,2,3\nx,2,3\n")
     assert main(["build", str(demo_copy), "--quiet"]) == 2
-    after = {p.name: sha256(p) for p in out.iterdir() if p.is_file()}
+    after = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in out.iterdir() if p.is_file()}
     assert before == after
     assert not list(out.glob(".agegrid-tmp-*"))
 
