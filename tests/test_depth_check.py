@@ -127,6 +127,7 @@ def _lattice_sources(tmp_path, field):
     return [tmp_path / "f.tif", tmp_path / "n.nc", tmp_path / "s.nc"]
 
 
+@pytest.mark.filterwarnings("ignore::rasterio.errors.NotGeoreferencedWarning")  # GDAL's in-memory copies
 def test_grid_on_the_lattice_is_read_block_by_block(tmp_path):
     # blocks of 7 cells (ragged at the edges) read as the pass asks give the cells read whole, exactly; the
     # task graph holds no array of the grid's size

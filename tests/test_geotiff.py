@@ -87,6 +87,16 @@ def test_tiles_are_the_largest_side_that_divides_the_grid_blocks(tmp_path, chunk
         assert np.array_equal(src.read(1), values["age"], equal_nan=True)
 
 
+def test_wide_grids_get_smaller_tiles():
+    # a row of unfinished overview tiles spans the grid: past 16,384 cells of width, 256-cell tiles halve it
+    from agegrid.grid import GridSpec
+    from agegrid.io.geotiff import tile_side
+
+    assert tile_side(GridSpec((-180.0, 180.0, -90.0, 90.0), 1 / 30, chunk=512)) == 512  # 10,800 wide
+    assert tile_side(GridSpec((-180.0, 180.0, -90.0, 90.0), 1 / 60, chunk=512)) == 256  # 21,600 wide
+    assert tile_side(GridSpec((-180.0, 180.0, -90.0, 90.0), 1 / 60, chunk=768)) == 256
+
+
 def test_file_does_not_depend_on_how_the_layer_arrived(tmp_path):
     """Blocks smaller than a tile and straddling tile edges give the same bytes as whole-tile blocks."""
     whole, _ = write_cogs(tmp_path, (256, 512), "zstd", True, tag="_whole")

@@ -28,11 +28,17 @@ from agegrid.io.atomic import staging_path
 #: COG tile sides, largest first: the largest that divides the grid's block side is used (GDAL's COG driver
 #: writes 512 by default, from memory), so every block is cut into whole tiles; 256 when neither divides it.
 TILE_SIDES = (512, 256)
+#: Memory a float32 layer's unfinished overview tiles may hold: each overview level keeps a row of tiles open
+#: across the grid until the blocks below them have passed, about width x side x 4 bytes over all levels.
+OVERVIEW_ROW_BYTES = 32 * 2**20
 
 
 def tile_side(spec) -> int:
-    """The COG tile side for a grid: the largest of :data:`TILE_SIDES` that divides its block side."""
-    return next((side for side in TILE_SIDES if spec.chunk % side == 0), TILE_SIDES[-1])
+    """The COG tile side for a grid: the largest of :data:`TILE_SIDES` that divides its block side and keeps
+    a layer's unfinished overview tiles within :data:`OVERVIEW_ROW_BYTES` (grids over 16,384 cells wide get
+    256-cell tiles: half the memory)."""
+    dividing = [side for side in TILE_SIDES if spec.chunk % side == 0] or [TILE_SIDES[-1]]
+    return next((side for side in dividing if spec.shape[1] * side * 4 <= OVERVIEW_ROW_BYTES), dividing[-1])
 
 
 class Codec(NamedTuple):
