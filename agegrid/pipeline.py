@@ -12,7 +12,6 @@ import io
 import logging
 import sys
 import time
-from concurrent.futures import ThreadPoolExecutor
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -214,7 +213,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
             attrs[f"isotherm_depth_{name}"] = {**attributes(f"isotherm_depth_{name}"), "isotherm_c": t_iso}
     if config.inputs.bathymetry:
         with stages("observed depth"):
-            # grids on the build's lattice are read block by block in the streaming pass (see grid_blocks)
+            # grids in the build's CRS are read block by block in the streaming pass (see grid_blocks)
             observed, source_attrs = grid_blocks(config.inputs.bathymetry, spec, opened)
             is_depth, statement = depth_sign(source_attrs, config.depth.bathymetry_sign, observed.compute)
             facts["notes"].append(statement)
@@ -402,16 +401,14 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
                     hashes.start(staged_nc)  # while the COGs are assembled and the tables made
+                if cogs is not None:
+                    with stages("assemble geotiff"):
+                        staged_cogs = cogs.finish()
+                    staged.update(staged_cogs)
+                    for path in staged_cogs.values():
+                        hashes.start(path)
                 sample = samples.dataset(ds)
-                with ThreadPoolExecutor(1) as pool:  # the tables while the COGs are assembled (mostly I/O)
-                    tables = pool.submit(_tables, config, sample, samples.stride, stages)
-                    if cogs is not None:
-                        with stages("assemble geotiff"):
-                            staged_cogs = cogs.finish()
-                        staged.update(staged_cogs)
-                        for path in staged_cogs.values():
-                            hashes.start(path)
-                    table, facts["depth_fit"], rates_text = tables.result()
+                table, facts["depth_fit"], rates_text = _tables(config, sample, samples.stride, stages)
                 target = out_dir / f"{config.name}_rates.csv"
                 staged[target] = _stage_text(target, rates_text)
                 if "zarr" in config.output.formats or magnetic_enabled(config):

@@ -29,7 +29,8 @@ from agegrid.io.atomic import staging_path
 #: writes 512 by default, from memory), so every block is cut into whole tiles; 256 when neither divides it.
 TILE_SIDES = (512, 256)
 #: Memory a float32 layer's unfinished overview tiles may hold: each overview level keeps a row of tiles open
-#: across the grid until the blocks below them have passed, about width x side x 4 bytes over all levels.
+#: across the grid until the blocks below them have passed, about width x side x 4 bytes over all levels
+#: (the budget is agegrid's choice: 512-cell tiles up to 16,384 cells of width).
 OVERVIEW_ROW_BYTES = 32 * 2**20
 
 

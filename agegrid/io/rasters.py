@@ -191,12 +191,17 @@ def open_grid(path: str | Path, spec) -> SourceGrid:
     raise BadInput("not a NetCDF or GeoTIFF file", path)
 
 
+def _build_crs(spec) -> rasterio.crs.CRS:
+    """The build grid's CRS as rasterio takes it."""
+    return rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
+
+
 def _aligned_window(source: SourceGrid, spec) -> tuple[slice, slice] | None:
     """The source's rows and columns that are exactly the build grid's cells, if its lattice holds them."""
     src, dst = source.transform, spec.transform
     if src.b or src.d or not np.isclose(src.a, dst.a, rtol=1e-9, atol=0) or not np.isclose(src.e, dst.e, rtol=1e-9, atol=0):
         return None
-    if source.crs != rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()):
+    if source.crs != _build_crs(spec):
         return None
     col, row = (dst.c - src.c) / src.a, (dst.f - src.f) / src.e
     c0, r0 = int(round(col)), int(round(row))
@@ -237,7 +242,7 @@ def resample(source: SourceGrid, spec, rows: slice = slice(None), cols: slice = 
         source=source.read(*covering), destination=target,
         src_transform=source.transform @ Affine.translation(covering[1].start, covering[0].start),
         src_crs=source.crs, src_nodata=np.nan, dst_transform=dst_transform,
-        dst_crs=rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()), dst_nodata=np.nan,
+        dst_crs=_build_crs(spec), dst_nodata=np.nan,
         resampling=Resampling.average if finer else Resampling.bilinear, **scales)
     return target
 
@@ -245,9 +250,10 @@ def resample(source: SourceGrid, spec, rows: slice = slice(None), cols: slice = 
 def _covering(source: SourceGrid, spec, dst_transform: Affine, shape: tuple[int, int],
               margin: int = 2) -> tuple[slice, slice] | None:
     """The source's rows and columns under a window of the build grid (``dst_transform``, ``shape``), with
-    ``margin`` cells around; None when the source is in another CRS or rotated (all of it is then read)."""
+    ``margin`` cells around (bilinear reads one neighbour; two is agegrid's margin of safety); None when the
+    source is in another CRS or rotated (all of it is then read)."""
     src = source.transform
-    if src.b or src.d or source.crs != rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt()):
+    if src.b or src.d or source.crs != _build_crs(spec):
         return None
     ny, nx = shape
     cols = sorted((x - src.c) / src.a for x in (dst_transform.c, dst_transform.c + nx * dst_transform.a))
@@ -307,7 +313,8 @@ def grid_blocks(path: str | Path, spec, opened: contextlib.ExitStack) -> tuple[d
 
 def _any_finite(source: SourceGrid, rows: slice, cols: slice, probes: int = 8, strip: int = 256) -> bool:
     """Whether a source has a finite value in the given rows and columns: a few rows spread over them first
-    (enough for any real grid), then, only if all of those are empty, strip by strip."""
+    (their number is agegrid's choice; one finite cell ends the search), then, only if all of those are
+    empty, strip by strip, so the answer is exact."""
     if rows.start >= rows.stop or cols.start >= cols.stop:
         return False
     for r in np.linspace(rows.start, rows.stop - 1, min(probes, rows.stop - rows.start)).astype(int):
