@@ -9,7 +9,8 @@ flank, resampled on a regular ``u`` axis: piecewise linear through its control, 
 strike to the compartment's edge parallel to the next younger trace of its flank (the ridge is
 continued along its own end trend). Traces implying an implausible half-rate against their younger
 neighbour, or lying on the wrong side of it, are dropped; picks within pick noise of a barrier count only
-where they agree with the firm picks of their trace (:func:`_unambiguous`).
+where they agree with the firm picks of their trace (:func:`_unambiguous`), and picks implying a half-rate
+far from their trace's (:func:`_steady_rate`) belong to another isochron.
 
 A cell at (u, v) takes the two traces that bracket its v in its column, and the age
 ``t_a + f (t_b - t_a)`` with ``f`` the fraction of the great-circle distance between them (the
@@ -64,6 +65,10 @@ EXTRAPOLATION_FRACTION = 0.25
 #: Ridge segments whose strike circles' poles lie within this angle belong to one ridge system (agegrid's
 #: choice: segments offset by transforms lie on nearly one great circle).
 SIBLING_MAX_POLE_ANGLE_DEG = 25.0
+#: How far, as a factor either way, a pick's half-rate against the younger trace may stray from its trace's
+#: median (agegrid's choice: along one segment the rate varies with the sine of the distance from the
+#: Euler pole, by less than a factor of 2 for a segment 1,000 km long 25 degrees or more from its pole).
+RATE_SPREAD_ALONG_TRACE = 4.0
 #: The empty trace passed as 'no younger trace' to :func:`_trace`.
 NO_TRACE = np.zeros(0)
 
@@ -288,6 +293,25 @@ def _unambiguous(offset: np.ndarray, sigma_km: np.ndarray, ambiguous: np.ndarray
     return ~ambiguous | (np.abs(offset - reference) <= tolerance)
 
 
+def _steady_rate(offset: np.ndarray, sigma_km: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """Which points lie beyond the younger trace within :data:`RATE_SPREAD_ALONG_TRACE` times, or a fraction
+    as large, of the median distance of the ``keep`` points, allowing three pick sigmas.
+
+    A trace's distance from the next younger one is the half-rate times their age difference, which varies
+    along strike only with the distance from the Euler pole: a pick far outside that belongs to another
+    isochron even where it stands alone along strike, so that no robust line through the trace's points
+    can tell it from a bend (a misidentified anomaly laid on a younger isochron is the usual case).
+    """
+    if not keep.any():
+        return keep
+    typical = np.median(offset[keep])
+    if typical <= 0:
+        return keep
+    slack = 3 * sigma_km / sphere.EARTH_RADIUS_KM
+    spread = RATE_SPREAD_ALONG_TRACE
+    return keep & (offset + slack >= typical / spread) & (offset - slack <= typical * spread)
+
+
 def _plausible(offset: np.ndarray, sigma_km: np.ndarray, dt: float, settings: Settings) -> np.ndarray:
     """Which points lie beyond the younger trace at a plausible half-rate, allowing 3 sigma of noise."""
     slack = 3 * sigma_km / sphere.EARTH_RADIUS_KM
@@ -389,6 +413,7 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
             keep[keep] = _consistent(col[idx][keep], offset[keep], sigma[idx][keep])
             if previous is not None:
                 keep &= _unambiguous(offset, sigma[idx], ambiguous[idx], keep)
+                keep &= _steady_rate(offset * flank, sigma[idx], keep)
             if not keep.all():
                 outliers.extend(int(i) for i in idx[~keep])
                 idx = idx[keep]

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import griddata
 
-from agegrid import sphere, timescale
+from agegrid import age, sphere, timescale
 from agegrid.synthetic import Stage, SyntheticBasin
 from tests.engine import run_engine
 from tests.helpers import scores
@@ -68,6 +68,13 @@ OTHER_BASINS = {
     "narrow-segments": SyntheticBasin(bands=[-8.0, -5.0, -2.0, 1.0, 4.0, 7.0], ridge_lon=[0.0, 1.2, 0.3, 1.5, 0.5]),
     # Euler pole near the basin (isochrons converge along strike) and the basin turned to high latitude
     "near-pole": SyntheticBasin(pole=(20.0, 10.0), spin_deg=50.0),
+    # fast spreading (150-180 mm/yr full rate): a basin twice as wide, sampled by the same number of tracks
+    "fast-rates": SyntheticBasin(stages=[Stage(10.0, 180.0, 50.0), Stage(24.0, 150.0, 60.0), Stage(40.0, 170.0, 45.0)]),
+    # one flank taking 70-80 % of the accretion, then the other 75 %
+    "strong-asymmetry": SyntheticBasin(stages=[Stage(10.0, 100.0, 80.0), Stage(24.0, 80.0, 25.0),
+                                               Stage(40.0, 95.0, 70.0)]),
+    # ridge offsets of 8 and 11 degrees (about 900 and 1,200 km) across the fracture zones
+    "wide-offsets": SyntheticBasin(ridge_lon=[0.0, 8.0, -3.0]),
 }
 
 
@@ -83,14 +90,76 @@ def test_other_basin_shapes(tmp_path, name, tracks, rms, p95):
         assert run.empty_fraction() <= 0.01
 
 
+def test_slow_spreading_within_the_picks_own_dating_error(tmp_path):
+    # at 18-25 mm/yr full rate the same 1.5 km of pick noise is worth 0.19 Myr of age on the slowest flank
+    # (18 mm/yr x 45 % = 8.1 km/Myr): the grid is held to that one pick's error (RMS) and twice it (p95)
+    basin = SyntheticBasin(stages=[Stage(10.0, 20.0, 50.0), Stage(24.0, 25.0, 40.0), Stage(40.0, 18.0, 55.0)])
+    pick_error = 1.5 / (18.0 * 0.45)
+    for seed in (1, 2):
+        run = run_engine(tmp_path, basin=basin, seed=seed, spacing=0.1)
+        for cells in (run.error, np.where(run.near_barrier(0.5), run.error, np.nan)):
+            s = scores(cells)
+            assert s["rms"] <= pick_error and s["p95"] <= 2 * pick_error, (seed, s)
+
+
+def test_noisier_picks(tmp_path):
+    # 4 km of position noise per axis (poorly navigated older surveys): the dense-survey goals still hold
+    for seed in (1, 2):
+        run = run_engine(tmp_path, seed=seed, spacing=0.1, noise_km=4.0)
+        for cells in (run.error, np.where(run.near_barrier(0.5), run.error, np.nan)):
+            s = scores(cells)
+            assert s["rms"] <= 0.15 and s["p95"] <= 0.3, (seed, s)
+
+
+def test_mislabelled_picks_barely_move_the_grid(tmp_path):
+    # one pick in ten given the chron end two or three boundaries away (a miscorrelated anomaly): the grid stays
+    # within the dense-survey goals and close to the grid from the clean picks. Seed 1 lays a 36.6 Ma pick,
+    # labelled 38.4 Ma, alone along strike of three true 38.4 Ma picks: a robust line through the four bends to
+    # it, and without the half-rate rule (age._steady_rate) 746 cells went empty and the RMS was 0.10 Myr
+    scale = timescale.load("CK95")
+    basin = SyntheticBasin()
+    for seed in (1, 2):
+        records = basin.survey(scale, 60, noise_km=1.5, seed=seed)
+        labels = {r["age_ma"]: (r["chron"], r["edge"]) for r in records}
+        ages = sorted(labels)
+        rng = np.random.default_rng(seed)
+        wrong = []
+        for r in records:
+            r = dict(r)
+            if rng.random() < 0.1:
+                k = int(np.clip(ages.index(r["age_ma"]) + rng.choice([-3, -2, 2, 3]), 0, len(ages) - 1))
+                r["age_ma"], (r["chron"], r["edge"]) = ages[k], labels[ages[k]]
+            wrong.append(r)
+        clean = scores(run_engine(tmp_path, records=records, spacing=0.1, seed=seed).error)
+        run = run_engine(tmp_path, records=wrong, spacing=0.1, seed=seed)
+        s = scores(run.error)
+        assert s["rms"] <= 0.15 and s["p95"] <= 0.3, (seed, s)
+        assert s["rms"] <= clean["rms"] + 0.02, (seed, s, clean)
+
+
+def test_a_pick_far_from_its_traces_half_rate_is_left_out():
+    # distances from the younger trace (km): three at the trace's rate, one on the younger isochron itself; a
+    # spread of three along strike (an Euler pole near the segment) is kept whole
+    km = 1 / sphere.EARTH_RADIUS_KM
+    sigma = np.full(4, 1.5)
+    keep = np.ones(4, bool)
+    assert age._steady_rate(np.array([79.6, 79.2, 1.8, 79.1]) * km, sigma, keep).tolist() == [True, True, False, True]
+    assert age._steady_rate(np.array([40.0, 70.0, 95.0, 120.0]) * km, sigma, keep).all()
+    # points already left out stay out and do not set the median
+    prior = np.array([True, True, True, False])
+    kept = age._steady_rate(np.array([79.6, 79.2, 78.0, 900.0]) * km, sigma, prior)
+    assert kept.tolist() == [True, True, True, False]
+
+
 def _without_picks(tmp_path, basin, corridors=(1,), ages=(20.0, np.inf), region_ages=(26.0, np.inf)):
     """The dense survey with every pick of an age within ``ages`` removed from the positive flank of the given
     segments; returns the run and the cells of true age within ``region_ages`` on that flank of the first."""
     records = basin.survey(timescale.load("CK95"), 60, noise_km=1.5, seed=1)
     lon, lat = (np.array([r[k] for r in records]) for k in ("lon", "lat"))
     _, plat = basin.to_pole_frame(lon, lat)
-    age = np.array([r["age_ma"] for r in records])
-    cut = np.isin(basin.corridor(plat), corridors) & (basin.flank(lon, lat) == 1) & (age > ages[0]) & (age < ages[1])
+    pick_age = np.array([r["age_ma"] for r in records])
+    cut = (np.isin(basin.corridor(plat), corridors) & (basin.flank(lon, lat) == 1)
+           & (pick_age > ages[0]) & (pick_age < ages[1]))
     run = run_engine(tmp_path, basin=basin, records=[r for r, c in zip(records, cut) if not c], spacing=0.1)
     _, cell_plat = basin.to_pole_frame(run.lon, run.lat)
     region = ((basin.corridor(cell_plat) == corridors[0]) & (basin.flank(run.lon, run.lat) == 1)
