@@ -10,7 +10,9 @@ strike to the compartment's edge parallel to the next younger trace of its flank
 continued along its own end trend). Traces implying an implausible half-rate against their younger
 neighbour, or lying on the wrong side of it, are dropped; picks within pick noise of a barrier count only
 where they agree with the firm picks of their trace (:func:`_unambiguous`), and picks implying a half-rate
-far from their trace's (:func:`_steady_rate`) belong to another isochron.
+far from their trace's (:func:`_steady_rate`) belong to another isochron. A trace resting on one pick is
+checked against the same flank of the other segments of its ridge system instead
+(:func:`_drop_lone_picks_off_rate`).
 
 A cell at (u, v) takes the two traces that bracket its v in its column, and the age
 ``t_a + f (t_b - t_a)`` with ``f`` the fraction of the great-circle distance between them (the
@@ -69,6 +71,10 @@ SIBLING_MAX_POLE_ANGLE_DEG = 25.0
 #: median (agegrid's choice: along one segment the rate varies with the sine of the distance from the
 #: Euler pole, by less than a factor of 2 for a segment 1,000 km long 25 degrees or more from its pole).
 RATE_SPREAD_ALONG_TRACE = 4.0
+#: How far, as a factor either way, a lone pick's distance from its flank's younger trace may stray from what
+#: the other segments of its ridge system imply before its trace is dropped (agegrid's choice; see
+#: :func:`_drop_lone_picks_off_rate`).
+LONE_PICK_RATE_FACTOR = 1.5
 #: The empty trace passed as 'no younger trace' to :func:`_trace`.
 NO_TRACE = np.zeros(0)
 
@@ -336,6 +342,8 @@ class TraceSet:
     traces: list
     #: +1 or -1: the side a ridge-less compartment's ages grow toward
     orientation: int = 1
+    #: control points of each trace, by (flank, age)
+    points: dict = field(default_factory=dict, repr=False)
     profiles: dict = field(default_factory=dict, repr=False)
 
     def flank(self, side: int) -> list:
@@ -384,6 +392,7 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
     col = (u - u0) / du
     km_per_col = du * sphere.EARTH_RADIUS_KM
     traces = []  # (flank, age, bound, V, D, sigma)
+    points = {}
     used = ridge.copy()
     if ridge.any():
         keep = _consistent(col[ridge], v[ridge], sigma[ridge])
@@ -426,11 +435,13 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
                 rate = gap * sphere.EARTH_RADIUS_KM / max(t - previous[1], 1e-9)
                 if not (settings.min_half_rate <= rate <= settings.max_half_rate):
                     dropped.append({"compartment": int(label), "boundary": int(bound[idx[0]]), "age_ma": t,
-                                    "flank": flank, "points": int(len(idx)), "implied_half_rate_mm_yr": float(rate)})
+                                    "flank": flank, "points": int(len(idx)), "implied_half_rate_mm_yr": float(rate),
+                                    "reason": "implausible half-rate"})
                     continue
             traces.append((flank, t, int(bound[idx[0]]), V, D, _median(sigma[idx]), np.nan))
+            points[flank, t] = len(idx)
             previous = traces[-1]
-    return TraceSet(int(label), frame, float(u0), float(du), ridge_trace, traces, flanks[0])
+    return TraceSet(int(label), frame, float(u0), float(du), ridge_trace, traces, flanks[0], points)
 
 
 def _assemble(ts: TraceSet, filled: list) -> CompartmentModel | None:
@@ -488,6 +499,65 @@ def _siblings(ts: TraceSet, sets: dict) -> list[tuple[TraceSet, int]]:
         if abs(cos) >= np.cos(np.radians(SIBLING_MAX_POLE_ANGLE_DEG)):
             found.append((other, 1 if cos > 0 else -1))
     return found
+
+
+def _drop_lone_picks_off_rate(sets: dict, dropped: list) -> None:
+    """Drop the traces resting on a single pick whose distance from their flank's next younger trace
+    disagrees with every other segment of the ridge system that has both isochrons on that flank.
+
+    A lone pick cannot be checked against its own trace, and a mislabelled one moves the flank's dating from
+    there outward (its older isochrons are borrowed from it). The same flank of the other segments (the
+    same plate) gives the expected distance: theirs between the same two isochrons, scaled by the ratio of
+    the flanks' widths at their other common isochrons (the rate grows with the distance from the Euler
+    pole). The trace goes when at least two segments have the pair and the distance is off every one of them
+    by more than a factor of :data:`LONE_PICK_RATE_FACTOR` and by more than three sigmas of the two traces.
+    """
+    for ts in sets.values():
+        segments = _siblings(ts, sets) if ts.ridge is not None else []
+        if len(segments) < 2:
+            continue
+        for side in (-1, 1):
+            own = ts.flank(side)
+            ages, _, widths = ts.profile(side)
+            others = [other.profile(sign * side) for other, sign in segments]
+            younger, drop = 0, []
+            for k, trace in enumerate(own, start=1):
+                noise = 3 * np.hypot(trace[5], (own[younger - 1] if younger else ts.ridge)[5]) / sphere.EARTH_RADIUS_KM
+                if ts.points.get((side, trace[1])) == 1 and _off_rate(ages, widths, k, younger, noise, others):
+                    drop.append(trace)
+                    rate = (widths[k] - widths[younger]) * sphere.EARTH_RADIUS_KM / max(ages[k] - ages[younger], 1e-9)
+                    dropped.append({"compartment": ts.label, "boundary": trace[2], "age_ma": trace[1], "flank": side,
+                                    "points": 1, "implied_half_rate_mm_yr": float(rate),
+                                    "reason": "a lone pick off the other segments' rate"})
+                else:
+                    younger = k
+            if drop:
+                ts.traces = [tr for tr in ts.traces if not any(tr is d for d in drop)]
+                ts.profiles.pop(side, None)
+
+
+def _off_rate(ages: np.ndarray, widths: np.ndarray, k: int, j: int, noise: float, others: list) -> bool:
+    """Whether the width step of a flank from its isochron ``j`` to its isochron ``k`` (``ages``, ``widths``:
+    its profile, ridge first) is off the same step of every profile in ``others`` that has both isochrons, by
+    more than a factor of :data:`LONE_PICK_RATE_FACTOR` and more than ``noise``, with at least two such
+    profiles. Each other profile's step is scaled by the median ratio of the widths at the flank's other
+    isochrons that it has."""
+    gap = widths[k] - widths[j]
+    mine = np.ones(len(ages), bool)
+    mine[[0, k]] = False  # the ridge has no width; isochron k is on trial
+    verdicts = []
+    for other_ages, _, other_widths in others:
+        if other_ages[-1] < ages[k]:
+            continue
+        at = np.interp(ages, other_ages, other_widths)
+        usable = mine & (ages <= other_ages[-1]) & (at > 0)
+        if not usable.any():
+            continue
+        expected = float(np.median(widths[usable] / at[usable])) * (at[k] - at[j])
+        if expected > 0:
+            verdicts.append(abs(gap - expected) > noise
+                            and not expected / LONE_PICK_RATE_FACTOR <= gap <= expected * LONE_PICK_RATE_FACTOR)
+    return len(verdicts) >= 2 and all(verdicts)
 
 
 def _sibling_gap_fill(ts: TraceSet, side: int, siblings: list[tuple[TraceSet, int]]) -> list:
@@ -631,13 +701,15 @@ def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel
         outliers.extend(int(sel[i]) for i in local)
         if traces is not None:
             sets[label] = traces
+    _drop_lone_picks_off_rate(sets, dropped)
     models = {label: model for label, ts in sets.items()
               for model in [_assemble(ts, _filled_flanks(ts, sets))] if model is not None}
     if outliers:
         log.info("%d control points disagree with their isochron trace and were left out", len(outliers))
     for item in dropped:
-        log.info("compartment %d: dropped trace of %.3f Ma on flank %+d (%d points, implied half-rate %.1f mm/yr)",
-                 item["compartment"], item["age_ma"], item["flank"], item["points"], item["implied_half_rate_mm_yr"])
+        log.info("compartment %d: dropped trace of %.3f Ma on flank %+d (%d points, implied half-rate %.1f mm/yr): %s",
+                 item["compartment"], item["age_ma"], item["flank"], item["points"], item["implied_half_rate_mm_yr"],
+                 item["reason"])
     return AgeModel(models, settings, list(control.boundaries.labels), np.asarray(control.boundaries.ages), dropped,
                     np.asarray(sorted(outliers), dtype=np.int64))
 
