@@ -296,6 +296,10 @@ def build_report(ds, manifest: dict, rates_csv: str | None = None, depth_csv: st
               for k, v in manifest.get("inputs", {}).items()]
     timings = [{"stage": k, "seconds": v} for k, v in manifest.get("timings_s", {}).items()]
     qa = manifest.get("qa", {})
+    engine = manifest.get("age_model", {})
+    dropped = [{"compartment": d["compartment"], "age (Ma)": d["age_ma"], "flank": d["flank"], "picks": d["points"],
+                "implied half-rate (mm/yr)": round(d["implied_half_rate_mm_yr"], 1), "reason": d.get("reason", "")}
+               for d in engine.get("dropped_traces", [])]
     fit = manifest.get("depth_fit")
     fit_rows = []
     if fit:
@@ -325,6 +329,13 @@ def build_report(ds, manifest: dict, rates_csv: str | None = None, depth_csv: st
         f"<h2>Pick QA</h2><p>{qa.get('picks_checked', 0)} picks checked, {qa.get('findings', 0)} findings: "
         f"{html.escape(json.dumps(qa.get('by_kind', {})))}</p>",
         _table([dict(f) for f in qa.get("suspect_picks", [])], 50),
+        "<h2>Control the age engine left out</h2>"
+        f"<p>{engine.get('outlier_control_points', 0)} control points disagree with their isochron trace (off a "
+        f"robust line through it, or far from its half-rate) and were left out"
+        + (f"; the picks among them: {html.escape(', '.join(map(str, sorted(left_out)[:50])))}"
+           + (f" and {len(left_out) - 50} more" if len(left_out) > 50 else "") if left_out else "")
+        + ". Isochron traces dropped whole:</p>",
+        _table(dropped, 50),
         "<h2>Magnetic check along survey tracks</h2>",
         _table([{k: v for k, v in t.items()} for t in manifest.get("magnetic", {}).get("tracks", [])]),
         "<h2>Rates per segment, flank and age band</h2>", _table(_read_csv(rates_csv)),

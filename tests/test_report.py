@@ -1,6 +1,7 @@
 """The build report renders in headless Chromium, every image loads, and the plots are not blank."""
 import base64
 import io
+import json
 import os
 import re
 import shutil
@@ -77,3 +78,24 @@ def test_report_can_be_switched_off(tmp_path):
     build.write_text(text)
     assert main(["build", str(build), "--quiet"]) == 0
     assert not (tmp_path / "out" / "report.html").exists()
+
+
+def test_report_lists_the_control_the_engine_left_out(tmp_path):
+    # the sparse survey whose lone mislabelled pick the engine drops (tests.test_age_engine): the report names the
+    # dropped trace and the left-out picks, as the manifest records them
+    from agegrid import timescale
+    from agegrid.synthetic import SyntheticBasin
+    from tests.helpers import basin_build
+    from tests.test_age_engine import _mislabelled
+
+    records = SyntheticBasin().survey(timescale.load("CK95"), 25, noise_km=1.5, seed=3)
+    build = basin_build(tmp_path, records=_mislabelled(records, [-2, -1, 1, 2], 103), spacing=0.1)
+    assert main(["build", str(build), "--quiet"]) == 0
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    engine = manifest["age_model"]
+    page = (tmp_path / "out" / "report.html").read_text()
+    section = page[page.index("<h2>Control the age engine left out</h2>"):]
+    assert f"{engine['outlier_control_points']} control points disagree" in section
+    assert all(pick in section for pick in engine["picks_left_out_as_inconsistent"][:50])
+    lone = [d for d in engine["dropped_traces"] if d["reason"] == "a lone pick off the other segments' rate"]
+    assert lone and f"<td>{lone[0]['age_ma']}</td>" in section
