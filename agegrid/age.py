@@ -372,10 +372,11 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
     if frame is None:
         return None
     u, v = frame.ws(xyz)
+    origin = np.arange(len(u))  # each point's index in the arguments (points 80 degrees or more away go)
     if not np.isfinite(u).all():
         keep_pts = np.isfinite(u)
         u, v, age, bound, kind, sigma = u[keep_pts], v[keep_pts], age[keep_pts], bound[keep_pts], kind[keep_pts], sigma[keep_pts]
-        ambiguous = ambiguous[keep_pts]
+        ambiguous, origin = ambiguous[keep_pts], origin[keep_pts]
         ridge = kind == 0
     ext_u = [u.min(), u.max()]
     if extent is not None:
@@ -397,7 +398,7 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
     if ridge.any():
         keep = _consistent(col[ridge], v[ridge], sigma[ridge])
         if not keep.all():
-            outliers.extend(int(i) for i in np.flatnonzero(ridge)[~keep])
+            outliers.extend(int(i) for i in origin[np.flatnonzero(ridge)[~keep]])
             used[np.flatnonzero(ridge)[~keep]] = False
     if used.any():
         rv, rd = _trace(col[used], v[used], ncol, NO_TRACE, km_per_col)
@@ -424,7 +425,7 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
                 keep &= _unambiguous(offset, sigma[idx], ambiguous[idx], keep)
                 keep &= _steady_rate(offset * flank, sigma[idx], keep)
             if not keep.all():
-                outliers.extend(int(i) for i in idx[~keep])
+                outliers.extend(int(i) for i in origin[idx[~keep]])
                 idx = idx[keep]
             if not len(idx):
                 continue

@@ -378,3 +378,17 @@ def test_compiled_trace_helpers_match_numpy():
         assert slope == pytest.approx(np.polyfit(xp[sel], vp[sel], 1)[0], rel=1e-9)
         assert anchor == (vp[-1] if end > 0 else vp[0])
     assert _median(v) == np.median(v)
+
+
+def test_left_out_picks_are_named_by_their_own_index():
+    # a point 80 degrees or more from the compartment's frame is set aside before the traces are drawn; the
+    # picks left out after it must still be reported by their index among the compartment's control
+    lon = np.concatenate([[120.0], np.linspace(-5, 5, 11), np.linspace(-4, 4, 9), [0.5]])
+    lat = np.concatenate([[0.0], np.zeros(11), np.full(9, 1.0), [0.1]])  # ridge on the equator, 5 Ma at 1 degree
+    kind = np.concatenate([[2], np.zeros(11, int), np.full(10, 2)])
+    age_ma = np.concatenate([[5.0], np.zeros(11), np.full(10, 5.0)])
+    bound = np.concatenate([[1], np.zeros(11, int), np.ones(10, int)])
+    outliers = []
+    traces = age._compartment_traces(1, sphere.to_xyz(lon, lat), age_ma, bound, kind, np.full(22, 1.5),
+                                     np.zeros(22, bool), None, np.radians(0.05), age.Settings(), [], outliers)
+    assert traces is not None and outliers == [21]  # the pick at 0.1 degrees, not its neighbour
