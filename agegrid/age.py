@@ -342,8 +342,8 @@ class TraceSet:
     traces: list
     #: +1 or -1: the side a ridge-less compartment's ages grow toward
     orientation: int = 1
-    #: control points of each trace, by (flank, age)
-    points: dict = field(default_factory=dict, repr=False)
+    #: (flank, age) of the traces resting on a single pick
+    lone: set = field(default_factory=set, repr=False)
     profiles: dict = field(default_factory=dict, repr=False)
 
     def flank(self, side: int) -> list:
@@ -393,7 +393,7 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
     col = (u - u0) / du
     km_per_col = du * sphere.EARTH_RADIUS_KM
     traces = []  # (flank, age, bound, V, D, sigma)
-    points = {}
+    lone = set()
     used = ridge.copy()
     if ridge.any():
         keep = _consistent(col[ridge], v[ridge], sigma[ridge])
@@ -440,9 +440,10 @@ def _compartment_traces(label, xyz, age, bound, kind, sigma, ambiguous, extent, 
                                     "reason": "implausible half-rate"})
                     continue
             traces.append((flank, t, int(bound[idx[0]]), V, D, _median(sigma[idx]), np.nan))
-            points[flank, t] = len(idx)
+            if len(idx) == 1:
+                lone.add((flank, t))
             previous = traces[-1]
-    return TraceSet(int(label), frame, float(u0), float(du), ridge_trace, traces, flanks[0], points)
+    return TraceSet(int(label), frame, float(u0), float(du), ridge_trace, traces, flanks[0], lone)
 
 
 def _assemble(ts: TraceSet, filled: list) -> CompartmentModel | None:
@@ -518,13 +519,15 @@ def _drop_lone_picks_off_rate(sets: dict, dropped: list) -> None:
         if len(segments) < 2:
             continue
         for side in (-1, 1):
+            if not any(flank == side for flank, _ in ts.lone):
+                continue
             own = ts.flank(side)
             ages, _, widths = ts.profile(side)
             others = [other.profile(sign * side) for other, sign in segments]
             younger, drop = 0, []
             for k, trace in enumerate(own, start=1):
-                noise = 3 * np.hypot(trace[5], (own[younger - 1] if younger else ts.ridge)[5]) / sphere.EARTH_RADIUS_KM
-                if ts.points.get((side, trace[1])) == 1 and _off_rate(ages, widths, k, younger, noise, others):
+                if (side, trace[1]) in ts.lone and _off_rate(ages, widths, k, younger, 3 * np.hypot(
+                        trace[5], (own[younger - 1] if younger else ts.ridge)[5]) / sphere.EARTH_RADIUS_KM, others):
                     drop.append(trace)
                     rate = (widths[k] - widths[younger]) * sphere.EARTH_RADIUS_KM / max(ages[k] - ages[younger], 1e-9)
                     dropped.append({"compartment": ts.label, "boundary": trace[2], "age_ma": trace[1], "flank": side,
