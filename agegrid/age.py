@@ -56,7 +56,7 @@ import numpy as np
 from numba import njit
 
 from agegrid import sphere
-from agegrid.age_kernel import DATING, MIN_COS_FROM_CENTRE, MOTION, PARTS, column_span
+from agegrid.age_kernel import BOTH, DATING, MIN_COS_FROM_CENTRE, MOTION, PARTS, column_span
 
 log = logging.getLogger("agegrid")
 
@@ -87,12 +87,17 @@ FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outs
 PART_OF = {name: part for part, (wide, narrow) in PARTS.items() for name in wide + narrow}
 #: Layers the kernel returns, in order.
 LAYERS = tuple(PART_OF)
-#: Each part's layers, wide planes first.
-LAYERS_OF = {part: wide + narrow for part, (wide, narrow) in PARTS.items()}
+#: The kernel's passes over a block (:mod:`agegrid.age_kernel`): either part alone, or both at once.
+PASSES = {"dating": DATING, "motion": MOTION, "both": BOTH}
+#: Each pass's planes in a block's buffer: its float64 planes, then its float32 planes, part by part.
+LAYOUT = {run: tuple(sum((PARTS[part][k] for part in PARTS if run in (part, "both")), ()) for k in (0, 1))
+          for run in PASSES}
+#: Each pass's layers, in plane order.
+LAYERS_OF = {run: wide + narrow for run, (wide, narrow) in LAYOUT.items()}
 #: The kernel's types: float64 where retiming needs it, float32 elsewhere (integers are exact in float32).
 LAYER_DTYPES = {name: np.dtype(np.float64 if name in PARTS[PART_OF[name]][0] else np.float32) for name in LAYERS}
-#: Bytes a cell takes in a block returned by :func:`evaluate_block`, per part.
-BLOCK_BYTES_PER_CELL = {part: 8 * len(wide) + 4 * len(narrow) for part, (wide, narrow) in PARTS.items()}
+#: Bytes a cell takes in a block returned by :func:`evaluate_block`, per pass.
+BLOCK_BYTES_PER_CELL = {run: 8 * len(wide) + 4 * len(narrow) for run, (wide, narrow) in LAYOUT.items()}
 
 
 @dataclass
@@ -780,42 +785,50 @@ FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CO
 
 
 def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, domain: np.ndarray,
-                   factors: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], part: str = "dating") -> np.ndarray:
-    """One part's layers (:data:`~agegrid.age_kernel.PARTS`) of one block of cells, packed in one byte array
-    (see :func:`block_layer`).
+                   factors: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], run: str = "dating",
+                   dated: dict[str, np.ndarray] | None = None) -> np.ndarray:
+    """The layers of one pass (:data:`PASSES`) over one block of cells, packed in one byte array (see
+    :func:`block_layer`).
 
-    ``factors`` are the block's unit-vector factors (:func:`block_factors`). The part's float64 planes
-    come first, then its float32 planes: one allocation, each plane contiguous.
+    ``factors`` are the block's unit-vector factors (:func:`block_factors`). The float64 planes come first,
+    then the float32 planes: one allocation, each plane contiguous. ``dated``, the dating part's layers of
+    the block (read back from a cache), leaves the pass only the motion part to compute.
     """
     from agegrid.age_kernel import evaluate
 
-    wide_names, narrow_names = PARTS[part]
-    cells = labels.size
-    buffer = np.empty((BLOCK_BYTES_PER_CELL[part],) + labels.shape, dtype=np.uint8)
-    flat = buffer.reshape(-1)
-    wide = flat[:8 * len(wide_names) * cells].view(np.float64).reshape((len(wide_names),) + labels.shape)
-    narrow = flat[8 * len(wide_names) * cells:].view(np.float32).reshape((len(narrow_names),) + labels.shape)
+    buffer = np.empty((BLOCK_BYTES_PER_CELL[run],) + labels.shape, dtype=np.uint8)
+    wide_names, narrow_names = LAYOUT[run]
+    split = 8 * len(wide_names) * labels.size
+    wide = buffer.reshape(-1)[:split].view(np.float64).reshape((len(wide_names),) + labels.shape)
+    narrow = buffer.reshape(-1)[split:].view(np.float32).reshape((len(narrow_names),) + labels.shape)
+    dating_planes = len(PARTS["dating"][1]) if run != "motion" else 0
+    part = PASSES[run]
+    if dated is not None:
+        for name in LAYERS_OF["dating"]:
+            block_layer(buffer, name, run)[...] = dated[name]
+        part = MOTION
     p = packed
     evaluate(*factors, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
              p.support, p.borrows,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
-             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, DATING if part == "dating" else MOTION, wide, narrow)
+             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, part, wide, narrow[:dating_planes],
+             narrow[dating_planes:])
     return buffer
 
 
-def _packed(layers: dict[str, np.ndarray], part: str, shape: tuple[int, int]) -> np.ndarray:
-    """A part's layers packed in one byte array as :func:`evaluate_block` returns them."""
-    buffer = np.empty((BLOCK_BYTES_PER_CELL[part],) + shape, dtype=np.uint8)
-    for name in LAYERS_OF[part]:
-        block_layer(buffer, name)[...] = layers[name]
+def _packed(layers: dict[str, np.ndarray], run: str, shape: tuple[int, int]) -> np.ndarray:
+    """A pass's layers packed in one byte array as :func:`evaluate_block` returns them."""
+    buffer = np.empty((BLOCK_BYTES_PER_CELL[run],) + shape, dtype=np.uint8)
+    for name in LAYERS_OF[run]:
+        block_layer(buffer, name, run)[...] = layers[name]
     return buffer
 
 
-def block_layer(buffer: np.ndarray, name: str) -> np.ndarray:
-    """One layer of a block returned by :func:`evaluate_block` for the layer's part (a view, no copy)."""
+def block_layer(buffer: np.ndarray, name: str, run: str) -> np.ndarray:
+    """One layer of a block returned by :func:`evaluate_block` for pass ``run`` (a view, no copy)."""
     shape = buffer.shape[1:]
-    wide, narrow = PARTS[PART_OF[name]]
+    wide, narrow = LAYOUT[run]
     if name in wide:
         k = wide.index(name)
         return buffer[8 * k:8 * (k + 1)].reshape(-1).view(np.float64).reshape(shape)
@@ -847,12 +860,17 @@ def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return scale * fx, scale * fy, np.array(fz)
 
 
-def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.Array]:
-    """The age-engine layers as lazy dask arrays, chunked like the grid.
+def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str, ...] = LAYERS
+               ) -> dict[str, da.Array]:
+    """The age-engine layers ``names`` (default: all) as lazy dask arrays, chunked like the grid.
 
-    With a :class:`~agegrid.cache.BlockCache`, the age stage's blocks whose inputs are unchanged are read
-    back from the last build's file, and the others are computed.
+    One task per block runs the kernel's pass for the parts the layers need: the age stage alone computes
+    only the dating part; the kinematic layers with it take both parts in one pass. With a
+    :class:`~agegrid.cache.BlockCache`, the dating part of blocks whose inputs are unchanged is read back
+    from the last build's file, and the rest is computed.
     """
+    parts = {PART_OF[name] for name in names}
+    run = "both" if len(parts) > 1 else parts.pop()
     chunks = spec.chunks
     # tasks named by one random token: dask would otherwise pickle the model and the labels to hash them
     token = uuid.uuid4().hex
@@ -875,28 +893,28 @@ def age_layers(spec, compartments, model: AgeModel, cache=None) -> dict[str, da.
         with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing releases the GIL
             cache.plan(dict(zip(blocks, pool.map(key, blocks))), chunks)
 
-    def block(_, part, block_info=None):
+    def block(_, block_info=None):
         info = block_info[0]
         (r0, r1), (c0, c1) = info["array-location"]
         window = slice(r0, r1), slice(c0, c1)
-        if cache is not None and part == "dating":  # the motion part is cheap: always computed
-            stored = cache.load(tuple(info["chunk-location"]), window, LAYERS_OF[part])
-            if stored is not None:
-                return _packed(stored, part, (r1 - r0, c1 - c0))
-        return evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), part)
+        stored = None
+        if cache is not None and run != "motion":  # the motion part is cheap: always computed
+            stored = cache.load(tuple(info["chunk-location"]), window, LAYERS_OF["dating"])
+            if stored is not None and run == "dating":
+                return _packed(stored, run, (r1 - r0, c1 - c0))
+        return evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), run,
+                              stored)
 
-    # one task per block and part: the age stage computes only the dating part; the kinematic layers add the
-    # motion part. Each layer is a view of its block's buffer (blockwise without concatenation), not a copy
-    packed_blocks = {part: da.map_blocks(block, template, part=part, dtype=np.uint8, new_axis=0,
-                                         chunks=((BLOCK_BYTES_PER_CELL[part],),) + template.chunks,
-                                         meta=np.empty((0, 0, 0), np.uint8), name=f"age-engine-{part}-{token}")
-                     for part in PARTS}
-    return {name: da.blockwise(_layer_of, "ij", packed_blocks[PART_OF[name]], "kij", name, None, concatenate=False,
+    # each layer is a view of its block's buffer (blockwise without concatenation), not a copy
+    buffers = da.map_blocks(block, template, dtype=np.uint8, new_axis=0,
+                            chunks=((BLOCK_BYTES_PER_CELL[run],),) + template.chunks,
+                            meta=np.empty((0, 0, 0), np.uint8), name=f"age-engine-{run}-{token}")
+    return {name: da.blockwise(_layer_of, "ij", buffers, "kij", name, None, run, None, concatenate=False,
                                dtype=LAYER_DTYPES[name], meta=np.empty((0, 0), LAYER_DTYPES[name]),
                                name=f"{name}-{token}")
-            for name in LAYERS}
+            for name in names}
 
 
-def _layer_of(buffers: list[np.ndarray], name: str) -> np.ndarray:
+def _layer_of(buffers: list[np.ndarray], name: str, run: str) -> np.ndarray:
     """One layer of a block from the one-element list of its buffers (see :func:`age_layers`)."""
-    return block_layer(buffers[0], name)
+    return block_layer(buffers[0], name, run)

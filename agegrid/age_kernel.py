@@ -9,8 +9,9 @@ search for the two traces that bracket s, and from that pair, in one of two part
 - *motion* (the kinematic layers): the half-rate, the spreading azimuth, the flank, and the full rate
   and asymmetry against the conjugate flank's pair at the same age.
 
-The parts are separate passes over a block so that the age stage computes and stores only what the age
-needs; both locate the bracketing pair the same way, so their layers always agree (see :mod:`agegrid.age`).
+A pass over a block fills one part, or both at once (a build writing every layer locates each cell's pair
+once); the age stage alone computes and stores only what the age needs. Every pass locates the bracketing
+pair the same way, so the layers always agree (see :mod:`agegrid.age`).
 """
 from __future__ import annotations
 
@@ -28,7 +29,8 @@ PARTS = {
                                          "compartment")),
     "motion": ((), ("half_rate", "spreading_azimuth", "flank", "full_rate", "asymmetry")),
 }
-DATING, MOTION = range(len(PARTS))
+#: The kernel's passes: either part alone, or both.
+DATING, MOTION, BOTH = range(3)
 #: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
 MIN_COS_FROM_CENTRE = 0.17
 AGE, FRACTION = range(len(PARTS["dating"][0]))
@@ -80,10 +82,11 @@ def column_span(rs, rx, ry, rz, labels, has, frames, w0, dw):
 @njit(cache=True, nogil=True, error_model="numpy")
 def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
              sigma, support, borrows, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags,
-             part, wide, narrow):
-    """Fill one part's planes (:data:`PARTS`; ``part`` is :data:`DATING` or :data:`MOTION`): ``wide`` the float64
-    planes and ``narrow`` the float32 planes, for the unit vectors (rs rx, rs ry, rz) of a block of cells
-    (2-D arrays; broadcast views welcome).
+             part, wide, narrow, moving):
+    """Fill the planes of a pass (:data:`DATING`, :data:`MOTION` or :data:`BOTH`; layers in :data:`PARTS`) for the
+    unit vectors (rs rx, rs ry, rz) of a block of cells (2-D arrays; broadcast views welcome): ``wide`` and
+    ``narrow`` the dating part's float64 and float32 planes, ``moving`` the motion part's float32 planes (a part
+    the pass leaves out may be given as an empty array).
 
     ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far). ``borrows`` says,
     per compartment, whether any of its traces is borrowed; ``support`` is, per trace, NaN for a trace
@@ -93,7 +96,7 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
     """
     ny, nx = labels.shape
     nan = np.nan
-    dating = part == DATING
+    dating, motion = part != MOTION, part != DATING
     for i in range(ny):
         last_lab, last_a, conj_lab, conj_lo = -1, -1, -1, -1
         for jj in range(nx):
@@ -106,10 +109,10 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                 wide[AGE, i, jj] = nan
                 wide[FRACTION, i, jj] = nan
                 narrow[FLAG, i, jj] = flags[2] if not domain[i, jj] else flags[3]
-            else:
-                narrow[FLANK, i, jj] = 0.0
+            if motion:
+                moving[FLANK, i, jj] = 0.0
                 for layer in (RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
-                    narrow[layer, i, jj] = nan
+                    moving[layer, i, jj] = nan
             if not domain[i, jj]:
                 continue
             if lab <= 0 or lab >= has.shape[0] or not has[lab]:
@@ -210,14 +213,15 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                              / (gap * gap * EARTH_RADIUS_KM * EARTH_RADIUS_KM)) if paired else nan
                 narrow[SIGMA, i, jj] = math.sqrt(position2 + (timescale_fraction * age) ** 2
                                               + (extrapolation_fraction * span) ** 2)
-                continue
+                if not motion:
+                    continue
             rate = gap * EARTH_RADIUS_KM / (dt * math.sqrt(stretch)) if paired else nan
-            narrow[RATE, i, jj] = rate
+            moving[RATE, i, jj] = rate
             # flank and the conjugate flank's rate at the same age and along-strike position
             r = ridge[lab]
             if r >= 0:
                 plus = a >= r and not mirror
-                narrow[FLANK, i, jj] = 1.0 if plus else -1.0
+                moving[FLANK, i, jj] = 1.0 if plus else -1.0
                 conj = np.nan
                 pair = -1
                 if not mirror:
@@ -252,8 +256,8 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                                             and support[to + pair + 1] != support[to + pair + 1]):
                         conj = _pair_rate(V, ages, vo, to, pair, nc, j0, t, dw[lab], w)
                 if conj == conj and rate == rate and not borrowed:
-                    narrow[FULL_RATE, i, jj] = rate + conj
-                    narrow[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
+                    moving[FULL_RATE, i, jj] = rate + conj
+                    moving[ASYMMETRY, i, jj] = 100.0 * rate / (rate + conj)
             # across-strike direction n - s p and along-strike n x p: both have length sqrt(1 - s^2), which
             # the direction (atan2) does not need
             nx_, ny_, nz_ = f0[2, 0], f0[2, 1], f0[2, 2]
@@ -268,4 +272,4 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
             east = -py * gx + px * gy
             north = -pz * px * gx - pz * py * gy + (px * px + py * py) * gz
             az = math.degrees(math.atan2(east, north))
-            narrow[AZIMUTH, i, jj] = az + 360.0 if az < 0 else az
+            moving[AZIMUTH, i, jj] = az + 360.0 if az < 0 else az

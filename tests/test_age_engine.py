@@ -267,15 +267,20 @@ def test_dating_and_motion_parts_agree_cell_by_cell(dense):
 
 
 def test_age_stage_computes_only_the_dating_part(dense):
-    from agegrid.age import age_layers
+    from agegrid.age import LAYERS, age_layers
     from agegrid.compartments import build_compartments
 
     comps = build_compartments(dense.spec, dense.basin.fracture_zones(), dense.basin.domain_polygon())
-    lazy = age_layers(dense.spec, comps, dense.model)
-    for name in ("age", "age_uncertainty", "age_flag"):
-        keys = [str(k) for k in dict(lazy[name].__dask_graph__())]
-        assert any("dating" in k for k in keys) and not any("motion" in k for k in keys), name
-    assert any("motion" in str(k) for k in dict(lazy["half_rate"].__dask_graph__()))
+    ages = age_layers(dense.spec, comps, dense.model, names=("age", "age_uncertainty", "age_flag"))
+    for name, layer in ages.items():
+        keys = [str(k) for k in dict(layer.__dask_graph__())]
+        assert any("dating" in k for k in keys) and not any("motion" in k or "both" in k for k in keys), name
+    # every layer at once: one pass per block for both parts, giving what the separate parts give
+    every = age_layers(dense.spec, comps, dense.model)
+    assert set(every) == set(LAYERS)
+    assert all(any("engine-both" in str(k) for k in dict(every[name].__dask_graph__())) for name in LAYERS)
+    for name, alone in {**ages, **age_layers(dense.spec, comps, dense.model, names=("half_rate", "asymmetry"))}.items():
+        np.testing.assert_array_equal(alone.compute(scheduler="threads"), dense.layers[name], err_msg=name)
 
 
 def test_uncertainty_is_sane(dense):
