@@ -403,10 +403,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     hashes.start(staged_nc)  # while the COGs are assembled and the tables made
                 if cogs is not None:
                     with stages("assemble geotiff"):
-                        staged_cogs = cogs.finish()
-                    staged.update(staged_cogs)
-                    for path in staged_cogs.values():
-                        hashes.start(path)
+                        staged.update(cogs.finish(hashes.start))  # each COG hashed as soon as it is complete
                 sample = samples.dataset(ds)
                 table, facts["depth_fit"], rates_text = _tables(config, sample, samples.stride, stages)
                 target = out_dir / f"{config.name}_rates.csv"

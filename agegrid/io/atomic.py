@@ -20,6 +20,14 @@ def staging_path(target: Path) -> Path:
     return Path(name)
 
 
+def staging_file(target: Path, suffix: str | None = None):
+    """A fresh temporary file in the target's folder, open for reading and writing: (path, binary file)."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, name = tempfile.mkstemp(prefix=STAGING_PREFIX, suffix=target.suffix if suffix is None else suffix,
+                                dir=target.parent)
+    return Path(name), os.fdopen(fd, "w+b")
+
+
 def replace(staged: Path, target: Path) -> None:
     """Move a staged file or folder over the target in one rename (folders: swap, then remove old)."""
     if staged.is_dir():

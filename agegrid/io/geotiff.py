@@ -23,7 +23,7 @@ import rasterio
 from rasterio.io import MemoryFile
 
 from agegrid.io import tiff
-from agegrid.io.atomic import staging_path
+from agegrid.io.atomic import staging_file, staging_path
 
 #: COG tile sides, largest first: the largest that divides the grid's block side is used (GDAL's COG driver
 #: writes 512 by default, from memory), so every block is cut into whole tiles; 256 when neither divides it.
@@ -128,13 +128,23 @@ class CogWriter:
         while self.pending:
             self._collect_first()
 
-    def finish(self) -> dict[Path, Path]:
-        """Encode what is left and assemble the COGs; returns {target: staged COG}."""
+    def finish(self, on_staged: Callable[[Path], None] | None = None) -> dict[Path, Path]:
+        """Encode what is left and assemble the COGs; returns {target: staged COG}.
+
+        ``on_staged``, when given, receives each staged COG as soon as it is complete (to hash it while the
+        others are assembled).
+        """
         self.drain()
         staged = {layer.target: staging_path(layer.target) for layer in self.layers.values()}
+
+        def assemble(layer: _Pyramid) -> None:
+            layer.assemble(staged[layer.target])
+            if on_staged is not None:
+                on_staged(staged[layer.target])
+
         try:
             with ThreadPoolExecutor(self.threads) as pool:  # the copies run in the kernel, without the GIL
-                list(pool.map(lambda layer: layer.assemble(staged[layer.target]), self.layers.values()))
+                list(pool.map(assemble, self.layers.values()))
         except BaseException:
             for path in staged.values():
                 path.unlink(missing_ok=True)
@@ -176,8 +186,9 @@ class _Pyramid:
             tiles = -(-shape[0] // self.tile) * -(-shape[1] // self.tile)
             self.offsets.append(np.full(tiles, -1, dtype=np.int64))
             self.counts.append(np.zeros(tiles, dtype=np.int64))
-            self.spills.append(staging_path(target.with_suffix(f".level{len(self.spills)}.tiles")))
-            self.files.append(open(self.spills[-1], "w+b"))
+            path, file = staging_file(target, f".level{len(self.spills)}.tiles")
+            self.spills.append(path)
+            self.files.append(file)
 
     def tile_extent(self, level: int, ti: int, tj: int) -> tuple[int, int]:
         """Rows and columns of tile (ti, tj) of ``level`` inside the image."""
