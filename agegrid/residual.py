@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.stats import linregress
 
 from agegrid.grouped import Groups
 
@@ -39,17 +40,17 @@ def binned_statistics(age: np.ndarray, values: np.ndarray, bin_myr: float) -> li
 
 
 def fit_sqrt_age(age: np.ndarray, depth: np.ndarray, age_range: tuple[float, float]) -> dict | None:
-    """Least-squares fit of depth = d_r + a sqrt(age) over an age range, with 1-sigma uncertainties."""
+    """Least-squares fit of depth = d_r + a sqrt(age) over an age range, with 1-sigma uncertainties
+    (:func:`scipy.stats.linregress` on sqrt(age), in float64)."""
     ok = np.isfinite(age) & np.isfinite(depth) & (age >= age_range[0]) & (age <= age_range[1])
     if ok.sum() < 3:
         return None
-    x, y = np.sqrt(age[ok]), depth[ok]
-    design = np.stack([np.ones_like(x), x], -1)
-    coef = np.linalg.lstsq(design, y, rcond=None)[0]
-    dof = max(1, len(y) - 2)
-    resid = y - design @ coef
-    s2 = float(resid @ resid) / dof
-    cov = s2 * np.linalg.inv(design.T @ design)
-    return {"ridge_depth_m": float(coef[0]), "ridge_depth_sigma_m": float(np.sqrt(cov[0, 0])),
-            "sqrt_coefficient_m": float(coef[1]), "sqrt_coefficient_sigma_m": float(np.sqrt(cov[1, 1])),
-            "rms_m": float(np.sqrt(s2)), "cells": int(ok.sum()), "age_range_myr": list(age_range)}
+    x, y = np.sqrt(age[ok], dtype=np.float64), np.asarray(depth[ok], dtype=np.float64)
+    if np.ptp(x) == 0:
+        return None
+    line = linregress(x, y)
+    resid = y - (line.intercept + line.slope * x)
+    return {"ridge_depth_m": float(line.intercept), "ridge_depth_sigma_m": float(line.intercept_stderr),
+            "sqrt_coefficient_m": float(line.slope), "sqrt_coefficient_sigma_m": float(line.stderr),
+            "rms_m": float(np.sqrt(resid @ resid / (len(y) - 2))), "cells": int(ok.sum()),
+            "age_range_myr": list(age_range)}
