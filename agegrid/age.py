@@ -84,20 +84,13 @@ FLAG_MEANINGS = ("interpolated_between_controls extrapolated_beyond_control outs
 
 #: The part of the kernel (``"dating"``, the age stage, or ``"motion"``, the kinematic layers) that returns
 #: each layer.
-PART_OF = {name: part for part, (wide, narrow) in PARTS.items() for name in wide + narrow}
+PART_OF = {name: part for part, names in PARTS.items() for name in names}
 #: Layers the kernel returns, in order.
 LAYERS = tuple(PART_OF)
 #: The kernel's passes over a block (:mod:`agegrid.age_kernel`): either part alone, or both at once.
 PASSES = {"dating": DATING, "motion": MOTION, "both": BOTH}
-#: Each pass's planes in a block's buffer: its float64 planes, then its float32 planes, part by part.
-LAYOUT = {run: tuple(sum((PARTS[part][k] for part in PARTS if run in (part, "both")), ()) for k in (0, 1))
-          for run in PASSES}
-#: Each pass's layers, in plane order.
-LAYERS_OF = {run: wide + narrow for run, (wide, narrow) in LAYOUT.items()}
-#: The kernel's types: float64 where retiming needs it, float32 elsewhere (integers are exact in float32).
-LAYER_DTYPES = {name: np.dtype(np.float64 if name in PARTS[PART_OF[name]][0] else np.float32) for name in LAYERS}
-#: Bytes a cell takes in a block returned by :func:`evaluate_block`, per pass.
-BLOCK_BYTES_PER_CELL = {run: 8 * len(wide) + 4 * len(narrow) for run, (wide, narrow) in LAYOUT.items()}
+#: Each pass's layers: the planes of a block it returns (float32), part by part.
+LAYERS_OF = {run: sum((PARTS[part] for part in PARTS if run in (part, "both")), ()) for run in PASSES}
 
 
 @dataclass
@@ -787,53 +780,28 @@ FLAGS = np.array([FLAG_INTERPOLATED, FLAG_EXTRAPOLATED, FLAG_OUTSIDE, FLAG_NO_CO
 def evaluate_block(packed: PackedModel, settings: Settings, labels: np.ndarray, domain: np.ndarray,
                    factors: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], run: str = "dating",
                    dated: dict[str, np.ndarray] | None = None) -> np.ndarray:
-    """The layers of one pass (:data:`PASSES`) over one block of cells, packed in one byte array (see
-    :func:`block_layer`).
+    """The layers of one pass (:data:`PASSES`) over one block of cells, stacked: shape (layers, rows, columns),
+    float32, in the order of :data:`LAYERS_OF`.
 
-    ``factors`` are the block's unit-vector factors (:func:`block_factors`). The float64 planes come first,
-    then the float32 planes: one allocation, each plane contiguous. ``dated``, the dating part's layers of
-    the block (read back from a cache), leaves the pass only the motion part to compute.
+    ``factors`` are the block's unit-vector factors (:func:`block_factors`). ``dated``, the dating part's
+    layers of the block (read back from a cache), leaves the pass only the motion part to compute.
     """
     from agegrid.age_kernel import evaluate
 
-    buffer = np.empty((BLOCK_BYTES_PER_CELL[run],) + labels.shape, dtype=np.uint8)
-    wide_names, narrow_names = LAYOUT[run]
-    split = 8 * len(wide_names) * labels.size
-    wide = buffer.reshape(-1)[:split].view(np.float64).reshape((len(wide_names),) + labels.shape)
-    narrow = buffer.reshape(-1)[split:].view(np.float32).reshape((len(narrow_names),) + labels.shape)
-    dating_planes = len(PARTS["dating"][1]) if run != "motion" else 0
+    planes = np.empty((len(LAYERS_OF[run]),) + labels.shape, dtype=np.float32)
+    split = len(PARTS["dating"]) if run != "motion" else 0
     part = PASSES[run]
     if dated is not None:
-        for name in LAYERS_OF["dating"]:
-            block_layer(buffer, name, run)[...] = dated[name]
+        for k, name in enumerate(PARTS["dating"]):
+            planes[k] = dated[name]
         part = MOTION
     p = packed
     evaluate(*factors, np.ascontiguousarray(labels), np.ascontiguousarray(domain, dtype=np.bool_), p.has,
              p.frames, p.w0, p.dw, p.ncol, p.ntrace, p.voff, p.toff, p.ridge, p.V, p.D, p.ages, p.bounds, p.sigma,
              p.support, p.borrows,
              float(settings.max_extrapolation_myr), float(settings.timescale_sigma_percent) / 100.0,
-             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, part, wide, narrow[:dating_planes],
-             narrow[dating_planes:])
-    return buffer
-
-
-def _packed(layers: dict[str, np.ndarray], run: str, shape: tuple[int, int]) -> np.ndarray:
-    """A pass's layers packed in one byte array as :func:`evaluate_block` returns them."""
-    buffer = np.empty((BLOCK_BYTES_PER_CELL[run],) + shape, dtype=np.uint8)
-    for name in LAYERS_OF[run]:
-        block_layer(buffer, name, run)[...] = layers[name]
-    return buffer
-
-
-def block_layer(buffer: np.ndarray, name: str, run: str) -> np.ndarray:
-    """One layer of a block returned by :func:`evaluate_block` for pass ``run`` (a view, no copy)."""
-    shape = buffer.shape[1:]
-    wide, narrow = LAYOUT[run]
-    if name in wide:
-        k = wide.index(name)
-        return buffer[8 * k:8 * (k + 1)].reshape(-1).view(np.float64).reshape(shape)
-    k = 8 * len(wide) + 4 * narrow.index(name)
-    return buffer[k:k + 4].reshape(-1).view(np.float32).reshape(shape)
+             GROWTH_PER_KM, EXTRAPOLATION_FRACTION, FLAGS, part, planes[:split], planes[split:])
+    return planes
 
 
 def block_factors(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -901,20 +869,19 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
         if cache is not None and run != "motion":  # the motion part is cheap: always computed
             stored = cache.load(tuple(info["chunk-location"]), window, LAYERS_OF["dating"])
             if stored is not None and run == "dating":
-                return _packed(stored, run, (r1 - r0, c1 - c0))
+                return np.stack([stored[name] for name in LAYERS_OF[run]]).astype(np.float32, copy=False)
         return evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), run,
                               stored)
 
-    # each layer is a view of its block's buffer (blockwise without concatenation), not a copy
-    buffers = da.map_blocks(block, template, dtype=np.uint8, new_axis=0,
-                            chunks=((BLOCK_BYTES_PER_CELL[run],),) + template.chunks,
-                            meta=np.empty((0, 0, 0), np.uint8), name=f"age-engine-{run}-{token}")
-    return {name: da.blockwise(_layer_of, "ij", buffers, "kij", name, None, run, None, concatenate=False,
-                               dtype=LAYER_DTYPES[name], meta=np.empty((0, 0), LAYER_DTYPES[name]),
-                               name=f"{name}-{token}")
+    # each layer is a view of its block's planes (blockwise without concatenation), not a copy
+    stacks = da.map_blocks(block, template, dtype=np.float32, new_axis=0,
+                           chunks=((len(LAYERS_OF[run]),),) + template.chunks,
+                           meta=np.empty((0, 0, 0), np.float32), name=f"age-engine-{run}-{token}")
+    return {name: da.blockwise(_plane, "ij", stacks, "kij", LAYERS_OF[run].index(name), None, concatenate=False,
+                               dtype=np.float32, meta=np.empty((0, 0), np.float32), name=f"{name}-{token}")
             for name in names}
 
 
-def _layer_of(buffers: list[np.ndarray], name: str, run: str) -> np.ndarray:
-    """One layer of a block from the one-element list of its buffers (see :func:`age_layers`)."""
-    return block_layer(buffers[0], name, run)
+def _plane(stacks: list[np.ndarray], k: int) -> np.ndarray:
+    """Plane ``k`` of a block from the one-element list of its stacks (see :func:`age_layers`)."""
+    return stacks[0][k]

@@ -22,20 +22,19 @@ from numba import njit
 
 from agegrid.sphere import EARTH_RADIUS_KM
 
-#: The two parts' layers, in plane order: float64 planes (``wide``: retiming needs them exact), then float32
-#: planes (``narrow``).
+#: The two parts' layers, in plane order; every plane is float32 (integers are exact in it, and an age to
+#: within about 10 years at 200 Ma; the fraction between the brackets, which retiming reads, to 6e-8).
 PARTS = {
-    "dating": (("age", "age_fraction"), ("age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old",
-                                         "compartment")),
-    "motion": ((), ("half_rate", "spreading_azimuth", "flank", "full_rate", "asymmetry")),
+    "dating": ("age", "age_fraction", "age_uncertainty", "age_flag", "age_bracket_young", "age_bracket_old",
+               "compartment"),
+    "motion": ("half_rate", "spreading_azimuth", "flank", "full_rate", "asymmetry"),
 }
 #: The kernel's passes: either part alone, or both.
 DATING, MOTION, BOTH = range(3)
 #: Cells farther than about 80 degrees from their compartment frame's centre are not dated.
 MIN_COS_FROM_CENTRE = 0.17
-AGE, FRACTION = range(len(PARTS["dating"][0]))
-SIGMA, FLAG, YOUNG, OLD, COMPARTMENT = range(len(PARTS["dating"][1]))
-RATE, AZIMUTH, FLANK, FULL_RATE, ASYMMETRY = range(len(PARTS["motion"][1]))
+AGE, FRACTION, SIGMA, FLAG, YOUNG, OLD, COMPARTMENT = range(len(PARTS["dating"]))
+RATE, AZIMUTH, FLANK, FULL_RATE, ASYMMETRY = range(len(PARTS["motion"]))
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -82,11 +81,10 @@ def column_span(rs, rx, ry, rz, labels, has, frames, w0, dw):
 @njit(cache=True, nogil=True, error_model="numpy")
 def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, voff, toff, ridge, V, D, ages, bounds,
              sigma, support, borrows, max_extrapolation, timescale_fraction, growth, extrapolation_fraction, flags,
-             part, wide, narrow, moving):
+             part, dated, moving):
     """Fill the planes of a pass (:data:`DATING`, :data:`MOTION` or :data:`BOTH`; layers in :data:`PARTS`) for the
-    unit vectors (rs rx, rs ry, rz) of a block of cells (2-D arrays; broadcast views welcome): ``wide`` and
-    ``narrow`` the dating part's float64 and float32 planes, ``moving`` the motion part's float32 planes (a part
-    the pass leaves out may be given as an empty array).
+    unit vectors (rs rx, rs ry, rz) of a block of cells (2-D arrays; broadcast views welcome): ``dated`` the
+    dating part's planes, ``moving`` the motion part's (a part the pass leaves out may be an empty array).
 
     ``flags`` holds the codes (interpolated, extrapolated, outside, no control, too far). ``borrows`` says,
     per compartment, whether any of its traces is borrowed; ``support`` is, per trace, NaN for a trace
@@ -102,13 +100,13 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
         for jj in range(nx):
             lab = labels[i, jj]
             if dating:
-                narrow[COMPARTMENT, i, jj] = lab
-                narrow[YOUNG, i, jj] = -1.0
-                narrow[OLD, i, jj] = -1.0
-                narrow[SIGMA, i, jj] = nan
-                wide[AGE, i, jj] = nan
-                wide[FRACTION, i, jj] = nan
-                narrow[FLAG, i, jj] = flags[2] if not domain[i, jj] else flags[3]
+                dated[COMPARTMENT, i, jj] = lab
+                dated[YOUNG, i, jj] = -1.0
+                dated[OLD, i, jj] = -1.0
+                dated[SIGMA, i, jj] = nan
+                dated[AGE, i, jj] = nan
+                dated[FRACTION, i, jj] = nan
+                dated[FLAG, i, jj] = flags[2] if not domain[i, jj] else flags[3]
             if motion:
                 moving[FLANK, i, jj] = 0.0
                 for layer in (RATE, AZIMUTH, FULL_RATE, ASYMMETRY):
@@ -180,7 +178,7 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                 span = abs(age - t_end)
             if span > max_extrapolation:
                 if dating:
-                    narrow[FLAG, i, jj] = flags[4]
+                    dated[FLAG, i, jj] = flags[4]
                 continue
             borrowed = False
             if borrows[lab]:
@@ -199,11 +197,11 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
             paired = gap > 0 and dt > 0
             if dating:
                 fy = f if young_first else 1.0 - f
-                narrow[FLAG, i, jj] = flags[1] if outside or borrowed else flags[0]
-                wide[AGE, i, jj] = age
-                wide[FRACTION, i, jj] = -fy if mirror else fy
-                narrow[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
-                narrow[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
+                dated[FLAG, i, jj] = flags[1] if outside or borrowed else flags[0]
+                dated[AGE, i, jj] = age
+                dated[FRACTION, i, jj] = -fy if mirror else fy
+                dated[YOUNG, i, jj] = bounds[to + a] if young_first else bounds[to + b]
+                dated[OLD, i, jj] = bounds[to + b] if young_first else bounds[to + a]
                 da = D[ia] * (1.0 - t) + D[ia + 1] * t
                 db = D[ib] * (1.0 - t) + D[ib + 1] * t
                 sa2 = sigma[to + a] ** 2 + (growth * da) ** 2
@@ -211,7 +209,7 @@ def evaluate(rs, rx, ry, rz, labels, domain, has, frames, w0, dw, ncol, ntrace, 
                 # the traces' position variance over r^2, without the square root r needs
                 position2 = (((1.0 - fc) ** 2 * sa2 + fc * fc * sb2) * (dt * dt * stretch)
                              / (gap * gap * EARTH_RADIUS_KM * EARTH_RADIUS_KM)) if paired else nan
-                narrow[SIGMA, i, jj] = math.sqrt(position2 + (timescale_fraction * age) ** 2
+                dated[SIGMA, i, jj] = math.sqrt(position2 + (timescale_fraction * age) ** 2
                                               + (extrapolation_fraction * span) ** 2)
                 if not motion:
                     continue

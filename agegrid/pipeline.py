@@ -189,8 +189,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
         facts["cache"] = cache.summary()
         log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, len(cache.keys),
                  len(cache.keys) - cache.reused)
-    dtypes = {"age": np.float64, "age_fraction": np.float64, "age_flag": np.int8, "age_bracket_young": np.int16,
-              "age_bracket_old": np.int16, "compartment": np.int32,
+    dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16, "compartment": np.int32,
               "flank": np.int8}
     layers = {k: v.astype(dtypes.get(k, np.float32)) for k, v in layers.items()}
     attrs = {name: attributes(name) for name in layers}

@@ -71,7 +71,7 @@ def retime_dataset(ds: xr.Dataset, scale, source=None) -> tuple[xr.Dataset, list
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = np.where(span_old > 0, span_new / span_old, 1.0)
     out = ds[[v for v in KEPT if v in ds]].copy()
-    out["age"].values = age
+    out["age"].values = age.astype(np.float32)  # the type a build stores
     if "age_uncertainty" in out:
         out["age_uncertainty"].values = (ds["age_uncertainty"].values * ratio).astype(np.float32)
     if "half_rate" in out:
