@@ -79,19 +79,24 @@ def check_picks(control, spec, compartments, settings, model) -> QAReport:
                        f"({table.where[idx[i]]}) within {settings.duplicate_km:g} km")
     dist, side = ridge_offsets(model, xyz, label)
     tol_km = 3 * np.nanmedian(control.sigma_km[is_pick]) if is_pick.any() else 6.0
-    for key in {(t, l, s) for t, l, s in zip(tracks, label, side) if t and l and s}:
-        members = np.flatnonzero((tracks == key[0]) & (label == key[1]) & (side == key[2]) & np.isfinite(dist))
+    track_code = np.unique(tracks.astype(str), return_inverse=True)[1].reshape(-1)
+    usable = (tracks.astype(bool)) & (label != 0) & (side != 0) & np.isfinite(dist)
+    for members in _groups(track_code, label, side, usable):
         if len(members) < 2:
             continue
         order = members[np.argsort(dist[members], kind="stable")]
         d, a = dist[order], age[order]
-        for n in range(1, len(order)):
-            nearer = d < d[n] - tol_km
-            if nearer.any() and a[n] < a[nearer].max() - 0.05:
-                m = order[np.flatnonzero(nearer)[np.argmax(a[nearer])]]
-                report.add(table, idx[order[n]], "age_inversion",
-                           f"age {a[n]:.3f} Ma lies {d[n]:.1f} km from the ridge, farther than pick "
-                           f"{table.ids[idx[m]]} of {age[m]:.3f} Ma on the same track and flank")
+        # the picks nearer the ridge than pick n by more than tol_km are a prefix of the order: the oldest of
+        # them (the first, on a tie) is what an inversion is judged against
+        oldest = np.maximum.accumulate(a)
+        rises = np.flatnonzero(np.r_[True, oldest[1:] > oldest[:-1]])
+        first_oldest = rises[np.searchsorted(rises, np.arange(len(a)), side="right") - 1]
+        nearer = np.searchsorted(d, d - tol_km, side="left")  # how many picks are that much nearer
+        for n in np.flatnonzero((nearer > 0) & (a < oldest[np.maximum(nearer - 1, 0)] - 0.05)):
+            m = order[first_oldest[nearer[n] - 1]]
+            report.add(table, idx[order[n]], "age_inversion",
+                       f"age {a[n]:.3f} Ma lies {d[n]:.1f} km from the ridge, farther than pick "
+                       f"{table.ids[idx[m]]} of {age[m]:.3f} Ma on the same track and flank")
         for n in range(1, len(order)):
             dd, dt = d[n] - d[n - 1], a[n] - a[n - 1]
             if dt <= 0.05 or a[n] <= 0:
@@ -113,3 +118,16 @@ def check_picks(control, spec, compartments, settings, model) -> QAReport:
             unique.append(f)
     report.findings = unique
     return report
+
+
+def _groups(*codes_and_usable):
+    """Indices of the usable items sharing every code (the last argument says which are usable)."""
+    *codes, usable = codes_and_usable
+    kept = np.flatnonzero(usable)
+    if not len(kept):
+        return []
+    keys = np.stack([np.asarray(c)[kept] for c in codes])
+    order = np.lexsort(keys[::-1])
+    keys = keys[:, order]
+    breaks = np.flatnonzero((keys[:, 1:] != keys[:, :-1]).any(axis=0)) + 1
+    return np.split(kept[order], breaks)
