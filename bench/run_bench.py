@@ -63,9 +63,9 @@ def age_stage(spec, basin, picks, scale):
     step = np.radians(spec.spacing) / 2
     control = build_control(picks, scale, ridges, step, default_sigma_km=1.5)
     model = build_age_model(spec, comps, control, Settings())
-    layers = age_layers(spec, comps, model)
+    age = age_layers(spec, comps, model, names=("age",))["age"]  # the kernel's dating part alone
     with dask.config.set(scheduler="threads"):
-        return layers["age"].compute()
+        return age.compute()
 
 
 def generic(spec, basin, records):
