@@ -207,14 +207,17 @@ class _Pyramid:
                 if rs.stop - rs.start == cs.stop - cs.start == self.tile:  # a whole tile: no copy here
                     yield level, ti, tj, values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
                     continue
+                th, tw = self.tile_extent(level, ti, tj)
                 entry = self.open[level].get((ti, tj))
-                if entry is None:
-                    blank = np.full((self.tile, self.tile), self.fill, dtype=self.dtype)
+                if entry is None:  # a tile inside the image is written whole before it is finished
+                    if th == tw == self.tile:
+                        blank = np.empty((self.tile, self.tile), dtype=self.dtype)
+                    else:
+                        blank = np.full((self.tile, self.tile), self.fill, dtype=self.dtype)
                     entry = self.open[level][(ti, tj)] = [blank, 0]
                 entry[0][rs.start - top:rs.stop - top, cs.start - left:cs.stop - left] = \
                     values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
                 entry[1] += (rs.stop - rs.start) * (cs.stop - cs.start)
-                th, tw = self.tile_extent(level, ti, tj)
                 if entry[1] >= th * tw:
                     del self.open[level][(ti, tj)]
                     yield level, ti, tj, entry[0]
