@@ -12,7 +12,6 @@ import io
 import logging
 import sys
 import time
-from concurrent.futures import ThreadPoolExecutor
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -169,34 +168,23 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
         facts["compartments"] = comps.count
     with stages("age model"):
         model = build_age_model(spec, comps, control, _engine_settings(config))
-    def pick_qa():
-        with stages("pick QA"):
-            return check_picks(control, spec, comps, config.picks, model)
-
-    aside = ThreadPoolExecutor(1)
-    if config.picks.suspect == "keep":  # nothing waits for the findings: the QA runs beside the block keys
-        qa_job = aside.submit(pick_qa)
-    else:
-        qa_job = None
-        qa = pick_qa()
+    with stages("pick QA"):
+        qa = check_picks(control, spec, comps, config.picks, model)
+        facts["qa"] = qa.summary()
         if qa.findings and config.picks.suspect == "fail":
             first = qa.findings[0]
             raise BadInput(f"suspect pick {first['id']}: {first['problem']} ({len(qa.findings)} findings; "
                            "picks.suspect = 'fail')", config.inputs.picks, first["where"])
-        if qa.findings:
-            with stages("age model without suspect picks"):
-                control = control.subset(~np.isin(control.source_index, qa.suspect_indices()) | (control.kind != 2))
-                model = build_age_model(spec, comps, control, _engine_settings(config))
-    try:
-        outliers = control.source_index[model.outliers]
-        facts["age_model"] = {"compartments_with_control": len(model.compartments), "dropped_traces": model.dropped,
-                              "outlier_control_points": int(len(model.outliers)),
-                              "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
-        with stages("block keys" if cache is not None else "age layers"):
-            layers = age_layers(spec, comps, model, cache)
-    finally:
-        aside.shutdown(wait=True)
-    facts["qa"] = (qa_job.result() if qa_job is not None else qa).summary()
+    if qa.findings and config.picks.suspect == "drop":
+        with stages("age model without suspect picks"):
+            control = control.subset(~np.isin(control.source_index, qa.suspect_indices()) | (control.kind != 2))
+            model = build_age_model(spec, comps, control, _engine_settings(config))
+    outliers = control.source_index[model.outliers]
+    facts["age_model"] = {"compartments_with_control": len(model.compartments), "dropped_traces": model.dropped,
+                          "outlier_control_points": int(len(model.outliers)),
+                          "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
+    with stages("block keys" if cache is not None else "age layers"):
+        layers = age_layers(spec, comps, model, cache)
     if cache is not None:
         facts["cache"] = cache.summary()
         log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, len(cache.keys),
