@@ -866,7 +866,7 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
         (r0, r1), (c0, c1) = info["array-location"]
         window = slice(r0, r1), slice(c0, c1)
         stored = None
-        if cache is not None and run != "motion":  # the motion part is cheap: always computed
+        if cache is not None and run != "motion":  # only the dating part is read back; motion is computed
             stored = cache.load(tuple(info["chunk-location"]), window, LAYERS_OF["dating"])
             if stored is not None and run == "dating":
                 return np.stack([stored[name] for name in LAYERS_OF[run]]).astype(np.float32, copy=False)
