@@ -828,14 +828,16 @@ def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return scale * fx, scale * fy, np.array(fz)
 
 
-def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str, ...] = LAYERS
-               ) -> dict[str, da.Array]:
+def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str, ...] = LAYERS,
+               keys_in_tasks: bool = False) -> dict[str, da.Array]:
     """The age-engine layers ``names`` (default: all) as lazy dask arrays, chunked like the grid.
 
     One task per block runs the kernel's pass for the parts the layers need: the age stage alone computes
     only the dating part; the kinematic layers with it take both parts in one pass. With a
     :class:`~agegrid.cache.BlockCache`, the dating part of blocks whose inputs are unchanged is read back
-    from the last build's file, and the rest is computed.
+    from the last build's file, and the rest is computed. When that file cannot serve blocks and
+    ``keys_in_tasks`` (the tasks run in this process), each task records its block's key for the next build
+    with the labels it reads anyway, instead of all keys being computed beforehand.
     """
     parts = {PART_OF[name] for name in names}
     run = "both" if len(parts) > 1 else parts.pop()
@@ -845,33 +847,42 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
     template = da.empty(spec.shape, chunks=chunks, dtype=np.int32, name=f"age-grid-{token}")
     packed = PackedModel.pack(model)
     settings = model.settings
+    p = packed
+
+    def block_key(location, labels, domain, factors):
+        span = column_span(*factors, labels, p.has, p.frames, p.w0, p.dw)
+        return cache.key(packed, settings, (*location, chunks), labels, domain, span)
+
+    recording = cache is not None and keys_in_tasks and not cache.can_serve(chunks)
     if cache is not None:
         rows, cols = template.chunks
         r_edges, c_edges = np.cumsum((0,) + rows), np.cumsum((0,) + cols)
+        blocks = [(i, j) for i in range(len(rows)) for j in range(len(cols))]
+        cache.blocks = len(blocks)
 
         def key(ij):
             i, j = ij
             window = (slice(r_edges[i], r_edges[i + 1]), slice(c_edges[j], c_edges[j + 1]))
-            labels, domain = compartments.window(*window)
-            p = packed
-            span = column_span(*block_factors(spec, *window), labels, p.has, p.frames, p.w0, p.dw)
-            return cache.key(packed, settings, (i, j, chunks), labels, domain, span)
+            return block_key(ij, *compartments.window(*window), block_factors(spec, *window))
 
-        blocks = [(i, j) for i in range(len(rows)) for j in range(len(cols))]
-        with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing releases the GIL
-            cache.plan(dict(zip(blocks, pool.map(key, blocks))), chunks)
+        if not recording:
+            with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing releases the GIL
+                cache.plan(dict(zip(blocks, pool.map(key, blocks))), chunks)
 
     def block(_, block_info=None):
         info = block_info[0]
         (r0, r1), (c0, c1) = info["array-location"]
-        window = slice(r0, r1), slice(c0, c1)
+        window, location = (slice(r0, r1), slice(c0, c1)), tuple(info["chunk-location"])
         stored = None
         if cache is not None and run != "motion":  # only the dating part is read back; motion is computed
-            stored = cache.load(tuple(info["chunk-location"]), window, LAYERS_OF["dating"])
+            stored = cache.load(location, window, LAYERS_OF["dating"])
             if stored is not None and run == "dating":
                 return np.stack([stored[name] for name in LAYERS_OF[run]]).astype(np.float32, copy=False)
-        return evaluate_block(packed, settings, *compartments.window(*window), block_factors(spec, *window), run,
-                              stored)
+        labels, domain = compartments.window(*window)
+        factors = block_factors(spec, *window)
+        if recording:
+            cache.record(location, block_key(location, labels, domain, factors))
+        return evaluate_block(packed, settings, labels, domain, factors, run, stored)
 
     # each layer is a view of its block's planes (blockwise without concatenation), not a copy
     stacks = da.map_blocks(block, template, dtype=np.float32, new_axis=0,

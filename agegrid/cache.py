@@ -64,9 +64,11 @@ def up_to_date(out_dir: Path, build_fingerprint: str) -> dict | None:
 class BlockCache:
     """The blocks of the last build, to read back the age-stage layers of those whose key is unchanged.
 
-    Keys are computed in the driver (:meth:`plan`), so the workers that read blocks, threads or
-    processes, need only the file's path; the counts of reused and recomputed blocks are known before
-    the computation starts.
+    When the last build's file can serve blocks, keys are computed in the driver (:meth:`plan`), so the
+    workers that read blocks, threads or processes, need only the file's path, and the counts of reused and
+    recomputed blocks are known before the computation starts. When it cannot (a forced build, the first
+    one, another block size), a block's key is only recorded for the next build, and the tasks that compute
+    the blocks in this process may record it themselves (:meth:`record`).
     """
 
     def __init__(self, out_dir: Path, enabled: bool = True):
@@ -74,6 +76,7 @@ class BlockCache:
         self.enabled = enabled
         self.root.mkdir(parents=True, exist_ok=True)
         self.keys: dict[tuple[int, int], str] = {}
+        self.blocks = 0
         self.source: Path | None = None
         self.reusable: set[tuple[int, int]] = set()
 
@@ -107,22 +110,36 @@ class BlockCache:
                 digest.update(np.ascontiguousarray(part).tobytes())
         return digest.hexdigest()
 
-    def plan(self, keys: dict[tuple[int, int], str], chunks: tuple[int, int]) -> None:
-        """Record the key of every block, and find those the last build's file holds with the same key."""
-        self.keys = keys
+    def _last_build(self, chunks: tuple[int, int]) -> tuple[Path, dict] | None:
+        """The last build's file and its blocks' keys, when it can serve blocks of this size (else None)."""
         if not self.enabled:
-            return
+            return None
         try:
             record = json.loads((self.root / INDEX).read_text())
             source = self.root.parent / record["file"]
             stat = source.stat()
         except (OSError, ValueError, KeyError, TypeError):
-            return
+            return None
         if [stat.st_size, stat.st_mtime_ns] != record.get("stamp") or tuple(record.get("chunks", ())) != tuple(chunks):
+            return None
+        return source, record.get("keys", {})
+
+    def can_serve(self, chunks: tuple[int, int]) -> bool:
+        """Whether the last build's file may hold blocks to read back (so keys are needed before computing)."""
+        return self._last_build(chunks) is not None
+
+    def plan(self, keys: dict[tuple[int, int], str], chunks: tuple[int, int]) -> None:
+        """Record the key of every block, and find those the last build's file holds with the same key."""
+        self.keys, self.blocks = keys, len(keys)
+        last = self._last_build(chunks)
+        if last is None:
             return
-        previous = record.get("keys", {})
-        self.source = source
+        self.source, previous = last
         self.reusable = {loc for loc, key in keys.items() if previous.get(f"{loc[0]},{loc[1]}") == key}
+
+    def record(self, location: tuple[int, int], key: str) -> None:
+        """Record one block's key, computed with the block (nothing is read back in such a build)."""
+        self.keys[location] = key
 
     def load(self, location: tuple[int, int], window: tuple[slice, slice], names) -> dict | None:
         """Layers ``names`` of the block at ``location`` (cells ``window``) as the last build wrote them, or None.
@@ -151,7 +168,7 @@ class BlockCache:
 
         stat = Path(netcdf).stat()
         record = {"file": str(Path(netcdf).relative_to(self.root.parent)), "stamp": [stat.st_size, stat.st_mtime_ns],
-                  "chunks": list(chunks), "keys": {f"{i},{j}": key for (i, j), key in self.keys.items()}}
+                  "chunks": list(chunks), "keys": {f"{i},{j}": key for (i, j), key in sorted(self.keys.items())}}
         atomic_write_text(self.root / INDEX, json.dumps(record))
 
     def prune(self, keep: Path | None = None) -> None:
@@ -161,5 +178,5 @@ class BlockCache:
                 path.unlink(missing_ok=True)
 
     def summary(self) -> dict:
-        return {"blocks": len(self.keys), "recomputed": len(self.keys) - self.reused, "from_cache": self.reused,
+        return {"blocks": self.blocks, "recomputed": self.blocks - self.reused, "from_cache": self.reused,
                 "directory": str(self.root)}

@@ -146,9 +146,10 @@ def plan(config) -> dict:
 
 
 def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.ExitStack,
-                   cache=None) -> tuple[dict, dict, dict]:
+                   cache=None, in_process: bool = True) -> tuple[dict, dict, dict]:
     """All output layers as lazy arrays, with their attributes and the facts for the manifest; input grids
-    read block by block stay open until ``opened`` closes."""
+    read block by block stay open until ``opened`` closes. ``in_process``: the layers will be computed on
+    this process's threads (not by distributed workers)."""
     spec = GridSpec.from_config(config.grid)
     spec.check_size(LAYERS_IN_MEMORY, config.source)
     facts: dict = {"notes": []}
@@ -184,11 +185,11 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
                           "outlier_control_points": int(len(model.outliers)),
                           "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
     with stages("block keys" if cache is not None else "age layers"):
-        layers = age_layers(spec, comps, model, cache)
+        layers = age_layers(spec, comps, model, cache, keys_in_tasks=in_process)
     if cache is not None:
         facts["cache"] = cache.summary()
-        log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, len(cache.keys),
-                 len(cache.keys) - cache.reused)
+        log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, cache.blocks,
+                 cache.blocks - cache.reused)
     dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16, "compartment": np.int32,
               "flank": np.int8}
     layers = {k: v.astype(dtypes.get(k, np.float32)) for k, v in layers.items()}
@@ -380,7 +381,8 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         cache = BlockCache(out_dir, enabled=not force)
         with stages("read inputs"):
             inputs = read_inputs(config)
-        layers, attrs, facts = compute_layers(config, inputs, stages, opened, cache)
+        layers, attrs, facts = compute_layers(config, inputs, stages, opened, cache,
+                                              in_process=not (address or workers))
         spec = GridSpec.from_config(config.grid)
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
         samples = Samples(spec, _sampled_layers(config), TABLE_CELLS)

@@ -283,6 +283,23 @@ def test_age_stage_computes_only_the_dating_part(dense):
         np.testing.assert_array_equal(alone.compute(scheduler="threads"), dense.layers[name], err_msg=name)
 
 
+def test_keys_recorded_by_the_block_tasks_equal_the_planned_ones(dense, tmp_path):
+    # a build with no last file to read from records each block's key in the task that computes the block;
+    # the next build plans with keys computed beforehand: both must agree, or no block is ever reused
+    from agegrid.age import age_layers
+    from agegrid.cache import BlockCache
+    from agegrid.compartments import build_compartments
+
+    comps = build_compartments(dense.spec, dense.basin.fracture_zones(), dense.basin.domain_polygon())
+    recorded, planned = BlockCache(tmp_path / "a"), BlockCache(tmp_path / "b")
+    lazy = age_layers(dense.spec, comps, dense.model, recorded, keys_in_tasks=True)
+    assert recorded.keys == {} and recorded.blocks > 1  # nothing hashed before the blocks are computed
+    lazy["age"].compute(scheduler="threads")
+    age_layers(dense.spec, comps, dense.model, planned)
+    assert len(planned.keys) == planned.blocks == recorded.blocks
+    assert recorded.keys == planned.keys
+
+
 def test_uncertainty_is_sane(dense):
     sigma = dense.layers["age_uncertainty"]
     ok = np.isfinite(dense.layers["age"])
