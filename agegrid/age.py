@@ -847,10 +847,9 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
     template = da.empty(spec.shape, chunks=chunks, dtype=np.int32, name=f"age-grid-{token}")
     packed = PackedModel.pack(model)
     settings = model.settings
-    p = packed
 
     def block_key(location, labels, domain, factors):
-        span = column_span(*factors, labels, p.has, p.frames, p.w0, p.dw)
+        span = column_span(*factors, labels, packed.has, packed.frames, packed.w0, packed.dw)
         return cache.key(packed, settings, (*location, chunks), labels, domain, span)
 
     recording = cache is not None and keys_in_tasks and not cache.can_serve(chunks)

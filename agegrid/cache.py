@@ -76,7 +76,7 @@ class BlockCache:
         self.enabled = enabled
         self.root.mkdir(parents=True, exist_ok=True)
         self.keys: dict[tuple[int, int], str] = {}
-        self.blocks = 0
+        self.blocks = 0  # the grid's block count, set by the age engine (:func:`agegrid.age.age_layers`)
         self.source: Path | None = None
         self.reusable: set[tuple[int, int]] = set()
 
@@ -130,7 +130,7 @@ class BlockCache:
 
     def plan(self, keys: dict[tuple[int, int], str], chunks: tuple[int, int]) -> None:
         """Record the key of every block, and find those the last build's file holds with the same key."""
-        self.keys, self.blocks = keys, len(keys)
+        self.keys = keys
         last = self._last_build(chunks)
         if last is None:
             return

@@ -13,17 +13,14 @@ PACKAGES = ("agegrid", "numpy", "scipy", "xarray", "dask", "distributed", "raste
             "netCDF4", "shapely", "matplotlib", "pydantic")
 
 
-def sha256(path: Path, block: int = 1 << 20) -> str:
+def sha256(path: Path) -> str:
     """SHA-256 of a file's bytes (remembered for this process while the file's size, modification time and
     inode stay the same: a build hashes its inputs once for the up-to-date check and once for the manifest)."""
     stat = os.stat(path)
     key = (str(Path(path).resolve()), stat.st_size, stat.st_mtime_ns, stat.st_ino, stat.st_dev)
     if key not in _DIGESTS:
-        digest = hashlib.sha256()
         with open(path, "rb") as fh:
-            for chunk in iter(lambda: fh.read(block), b""):
-                digest.update(chunk)
-        _DIGESTS[key] = digest.hexdigest()
+            _DIGESTS[key] = hashlib.file_digest(fh, "sha256").hexdigest()
     return _DIGESTS[key]
 
 

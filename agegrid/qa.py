@@ -12,6 +12,7 @@ import numpy as np
 from scipy.spatial import cKDTree
 
 from agegrid import sphere
+from agegrid.grouped import Groups
 
 R = sphere.EARTH_RADIUS_KM
 
@@ -80,8 +81,11 @@ def check_picks(control, spec, compartments, settings, model) -> QAReport:
     dist, side = ridge_offsets(model, xyz, label)
     tol_km = 3 * np.nanmedian(control.sigma_km[is_pick]) if is_pick.any() else 6.0
     track_code = np.unique(tracks.astype(str), return_inverse=True)[1].reshape(-1)
-    usable = (tracks.astype(bool)) & (label != 0) & (side != 0) & np.isfinite(dist)
-    for members in _groups(track_code, label, side, usable):
+    usable = np.flatnonzero(tracks.astype(bool) & (label != 0) & (side != 0) & np.isfinite(dist))
+    keys = np.stack([track_code, label, side], -1)[usable]  # picks of one track, compartment and flank
+    groups = Groups(np.unique(keys, axis=0, return_inverse=True)[1].reshape(-1), usable)
+    for start, stop in zip(groups.starts, groups.stops):
+        members = groups.cells[start:stop]
         if len(members) < 2:
             continue
         order = members[np.argsort(dist[members], kind="stable")]
@@ -119,15 +123,3 @@ def check_picks(control, spec, compartments, settings, model) -> QAReport:
     report.findings = unique
     return report
 
-
-def _groups(*codes_and_usable):
-    """Indices of the usable items sharing every code (the last argument says which are usable)."""
-    *codes, usable = codes_and_usable
-    kept = np.flatnonzero(usable)
-    if not len(kept):
-        return []
-    keys = np.stack([np.asarray(c)[kept] for c in codes])
-    order = np.lexsort(keys[::-1])
-    keys = keys[:, order]
-    breaks = np.flatnonzero((keys[:, 1:] != keys[:, :-1]).any(axis=0)) + 1
-    return np.split(kept[order], breaks)

@@ -11,21 +11,21 @@ from pathlib import Path
 STAGING_PREFIX = ".agegrid-tmp-"
 
 
-def staging_path(target: Path) -> Path:
-    """A fresh temporary name in the target's folder (same file system, so rename is atomic)."""
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, name = tempfile.mkstemp(prefix=STAGING_PREFIX, suffix=target.suffix, dir=target.parent)
-    os.close(fd)
-    os.unlink(name)
-    return Path(name)
-
-
 def staging_file(target: Path, suffix: str | None = None):
-    """A fresh temporary file in the target's folder, open for reading and writing: (path, binary file)."""
+    """A fresh temporary file in the target's folder (same file system, so rename is atomic), open for reading
+    and writing: (path, binary file)."""
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, name = tempfile.mkstemp(prefix=STAGING_PREFIX, suffix=target.suffix if suffix is None else suffix,
                                 dir=target.parent)
     return Path(name), os.fdopen(fd, "w+b")
+
+
+def staging_path(target: Path) -> Path:
+    """A fresh temporary name in the target's folder, for a writer that creates the file (or folder) itself."""
+    path, file = staging_file(target)
+    file.close()
+    path.unlink()
+    return path
 
 
 def replace(staged: Path, target: Path) -> None:
