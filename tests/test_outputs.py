@@ -2,6 +2,7 @@
 import hashlib
 import json
 import os
+import stat
 import subprocess
 import sys
 from pathlib import Path
@@ -95,6 +96,17 @@ def test_manifest(demo_build):
     assert manifest["models"]["gdh1"]["parameters"]["decay_per_myr"] == 0.0278
     assert manifest["timings_s"]["total"] > 0
     assert {"netcdf", "geotiff"} == set(manifest["config"]["output"]["formats"])
+
+
+def test_outputs_have_the_permissions_of_any_file_the_user_writes(demo_build, tmp_path):
+    plain = tmp_path / "plain"
+    plain.write_text("")  # what open() gives under this process's umask: the reference
+    expected = stat.S_IMODE(plain.stat().st_mode)
+    manifest = json.loads((demo_build / "manifest.json").read_text())
+    paths = [Path(e["path"]) for e in manifest["outputs"]] + [demo_build / "manifest.json"]
+    assert any(p.suffix == ".tif" for p in paths)
+    for path in paths:
+        assert stat.S_IMODE(path.stat().st_mode) == expected, path.name
 
 
 def test_file_hash_follows_the_file(tmp_path):

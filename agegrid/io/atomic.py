@@ -11,12 +11,23 @@ from pathlib import Path
 STAGING_PREFIX = ".agegrid-tmp-"
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+#: Permissions of a new output, as ``open`` would give it (mkstemp's own are owner-only).
+OUTPUT_MODE = 0o666 & ~_umask()
+
+
 def staging_file(target: Path, suffix: str | None = None):
     """A fresh temporary file in the target's folder (same file system, so rename is atomic), open for reading
     and writing: (path, binary file)."""
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, name = tempfile.mkstemp(prefix=STAGING_PREFIX, suffix=target.suffix if suffix is None else suffix,
                                 dir=target.parent)
+    os.fchmod(fd, OUTPUT_MODE)  # staged files may be renamed to an output: readable as any file the user writes
     return Path(name), os.fdopen(fd, "w+b")
 
 
