@@ -79,6 +79,8 @@ CASES = {
     "absurd age": (lambda f: (f / "picks.csv").write_text("lon,lat,age_ma\n-125,1,900\n"), "picks.csv", "line 2",
                    "impossible"),
     "unknown chron": (picks("a,T1,-125.0,1,C5n.7n,old,1.5\n"), "picks.csv", "line 2", "not in CK95"),
+    "quote left open": (picks('a,T1,-125.0,1,"C5n.2n,old,1.5\nb,T1,-125.0,1,C5n.2n,old,1.5\n'), "picks.csv", "line 2",
+                        "quoted field"),
     "missing column": (lambda f: (f / "picks.csv").write_text("lon,age_ma\n1,2\n"), "picks.csv", "line 1", "lat"),
     "empty file": (raw("picks.csv", b""), "picks.csv", "", "empty"),
     "binary file": (raw("picks.csv", b"\x00\x01\x02lon,lat\n"), "picks.csv", "", "binary"),

@@ -83,11 +83,38 @@ def _parse_record(record: dict, path: Path, where: str) -> tuple:
     return lon, lat, age, chron, edge, sigma
 
 
+def _parse_columns(records: list[dict]) -> tuple | None:
+    """The columns :func:`_parse_record` gives, parsed column by column; None when any value is not a plain
+    valid entry (empty where required, not a number, out of range), for the record-by-record parse to name.
+
+    Numbers go through ``float`` as there, so both accept exactly the same text.
+    """
+    try:
+        lon = np.array([float(r["lon"]) for r in records])
+        lat = np.array([float(r["lat"]) for r in records])
+        chron = [(r.get("chron") or "").strip() or None for r in records]
+        age = np.array([float(r["age_ma"]) if (r.get("age_ma") or "").strip() or c is None else math.nan
+                        for r, c in zip(records, chron)])
+        sigma = np.array([float(r["sigma_km"]) if (r.get("sigma_km") or "").strip() else math.nan for r in records])
+    except (KeyError, ValueError, TypeError):
+        return None
+    edge = [(r.get("edge") or "young").strip().lower() for r in records]
+    given = ~np.isnan(age)
+    valid = (np.isfinite(lon).all() and np.isfinite(lat).all() and np.all(np.abs(lat) <= 90)
+             and np.all(np.abs(lon) <= 360) and np.isfinite(age[given]).all() and np.all(age[given] >= 0)
+             and np.all(age[given] <= MAX_AGE_MA) and not np.isinf(sigma).any() and not np.any(sigma <= 0)
+             and set(edge) <= {"young", "old"})
+    return (lon, lat, age, chron, edge, sigma) if valid else None
+
+
 def _table(path, columns, records, where, geojson) -> PickTable:
     if not records:
         raise BadInput("no picks in the file", path)
-    parsed = [_parse_record(r, path, w) for r, w in zip(records, where)]
-    lon, lat, age, chron, edge, sigma = zip(*parsed)
+    parsed = _parse_columns(records)
+    if parsed is None:  # some value is wrong: the record-by-record parse names the first
+        lon, lat, age, chron, edge, sigma = zip(*[_parse_record(r, path, w) for r, w in zip(records, where)])
+    else:
+        lon, lat, age, chron, edge, sigma = parsed
     ids = [str(r.get("id") or "").strip() or f"{Path(path).stem}:{w.split()[-1]}"
            for r, w in zip(records, where)]
     return PickTable(
@@ -114,14 +141,17 @@ def read_picks_csv(path: str | Path) -> PickTable:
     if len(set(columns)) != len(columns):
         raise BadInput("repeated column names in the header", path, f"line {header_line}")
     records, where = [], []
-    for n, line in body[1:]:
+    rows = csv.reader(line for _, line in body[1:])  # one line a row, as the numbering assumes
+    for k, (n, _) in enumerate(body[1:], 1):
         try:
-            values = next(csv.reader([line]))
+            values = next(rows)
         except csv.Error as exc:
             raise BadInput(f"unreadable CSV row: {exc}", path, f"line {n}") from None
+        if rows.line_num != k:
+            raise BadInput("unreadable CSV row: a quoted field runs past the end of the line", path, f"line {n}")
         if len(values) != len(columns):
             raise BadInput(f"{len(values)} fields where the header has {len(columns)}", path, f"line {n}")
-        records.append(dict(zip(columns, (v.strip() for v in values))))
+        records.append(dict(zip(columns, [v.strip() for v in values])))
         where.append(f"line {n}")
     return _table(path, columns, records, where, geojson=False)
 
