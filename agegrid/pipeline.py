@@ -21,6 +21,7 @@ import xarray as xr
 
 from agegrid import __version__, thermal, timescale
 from agegrid.age import LAYERS, Settings, age_layers, build_age_model
+from agegrid.allocator import keep_freed_memory
 from agegrid.bathymetry import depth_sign
 from agegrid.cache import KEPT_NETCDF, BlockCache, fingerprint, up_to_date
 from agegrid.compartments import build_compartments, implied_fracture_zones
@@ -365,6 +366,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
     out_dir = Path(config.output.directory)
     out_dir.mkdir(parents=True, exist_ok=True)
     limit_chunk_cache()
+    keep_freed_memory()
     with BuildLock(out_dir), contextlib.ExitStack() as opened:  # opened: input grids read block by block
         removed = atomic.clean_stale(out_dir)
         if removed:
