@@ -102,7 +102,7 @@ def _magnetic_settings(config) -> MagneticSettings:
 
 
 def _elementwise(func, array, dtype=np.float32):
-    return da.map_blocks(lambda block: func(block).astype(dtype), array, dtype=dtype)
+    return da.map_blocks(lambda block: func(block).astype(dtype, copy=False), array, dtype=dtype)
 
 
 def _engine_settings(config) -> Settings:

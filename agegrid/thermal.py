@@ -46,9 +46,12 @@ def _inverse_root_then_exponential(age, coefficient, switch, asymptote, amplitud
 def _two_branches(age, youngest, offset, coefficient, inverse, switch, through_switch, asymptote, amplitude, decay
                   ) -> np.ndarray:
     """:func:`_two_branch_law` over every cell of ``age`` (any shape): one branch per cell and no temporaries
-    (2.5x faster than both branches in numpy over a 512 x 512 block)."""
-    age = np.asarray(age, dtype=float)
-    out = np.empty(age.shape)
+    (2.5x faster than both branches in numpy over a 512 x 512 block). Computed in float64; float32 ages give
+    float32 values (the float64 result rounded once), anything else float64."""
+    age = np.asarray(age)
+    if age.dtype != np.float32:
+        age = age.astype(float)
+    out = np.empty(age.shape, dtype=age.dtype)
     _two_branch_law(np.ascontiguousarray(age).reshape(-1), out.reshape(-1), float(youngest), float(offset),
                     float(coefficient), bool(inverse), float(switch), bool(through_switch), float(asymptote),
                     float(amplitude), float(decay))
@@ -62,7 +65,7 @@ def _two_branch_law(age, out, youngest, offset, coefficient, inverse, switch, th
     ``through_switch``), asymptote + amplitude exp(-decay t) after; t no younger than ``youngest``; NaN for
     negative or missing ages."""
     for i in range(age.size):
-        t = age[i]
+        t = float(age[i])  # float64 arithmetic for float32 ages too
         if not t >= 0.0:
             out[i] = np.nan
             continue

@@ -92,6 +92,18 @@ def test_models_are_nan_safe_and_finite(name):
         assert np.all(np.diff(m.heat_flow(t)) <= 1e-9)
 
 
+@pytest.mark.parametrize("name", sorted(MODELS))
+def test_float32_ages_give_the_float64_values_rounded_once(name):
+    """A build's float32 age layer: each model's depth and heat flow are the float64 results (the reference,
+    from the same ages widened exactly) rounded to float32, without float64 copies of the block."""
+    m = MODELS[name]
+    age = np.concatenate([AGES, [np.nan, -1.0, 0.05, 250.0]]).astype(np.float32)
+    for law in (m.depth, m.heat_flow):
+        got, reference = law(age), law(age.astype(np.float64))
+        assert got.dtype == np.float32 or name == "plate"
+        np.testing.assert_array_equal(got.astype(np.float32), reference.astype(np.float32))
+
+
 def test_unknown_parameter_refused():
     with pytest.raises(ValueError, match="no parameter"):
         MODELS["plate"].with_parameters(thickness=100)
