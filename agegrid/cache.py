@@ -86,20 +86,21 @@ class BlockCache:
 
     def key(self, packed, settings, location, labels: np.ndarray, domain: np.ndarray, span) -> str:
         """The content hash of one block's inputs; ``span`` is the least and greatest trace-table column of
-        each compartment's cells in the block (:func:`agegrid.age_kernel.column_span`)."""
+        each compartment's cells in the block (:func:`agegrid.age_kernel.column_span`).
+
+        The labels and the domain are hashed whole; the model enters through the compartments that date cells
+        of the block (those with a column span: cells behind a compartment's frame are never dated).
+        """
         digest = hashlib.sha256()
         digest.update(f"{__version__}|{location}|{settings}".encode())
-        digest.update(np.ascontiguousarray(labels).tobytes())
-        digest.update(np.ascontiguousarray(domain).tobytes())
+        digest.update(np.ascontiguousarray(labels))
+        digest.update(np.ascontiguousarray(domain))
         least, greatest = span
-        present = np.flatnonzero(np.bincount(np.maximum(labels, 0).ravel()))  # the labels in the block, sorted
-        for label in present:
-            if label <= 0 or label >= len(packed.has) or not packed.has[label]:
-                continue
+        for label in np.flatnonzero(np.isfinite(least)):  # compartments with a trace model and cells here
             frame = packed.frames[label]
             nc, k = int(packed.ncol[label]), int(packed.ntrace[label])
-            lo = int(np.clip(np.floor(min(least[label], 0.0)) - MARGIN_COLUMNS, 0, nc - 1))
-            hi = int(np.clip(np.ceil(max(greatest[label], 0.0)) + MARGIN_COLUMNS, 0, nc - 1)) + 1
+            lo = int(np.clip(np.floor(least[label]) - MARGIN_COLUMNS, 0, nc - 1))
+            hi = int(np.clip(np.ceil(greatest[label]) + MARGIN_COLUMNS, 0, nc - 1)) + 1
             v0, t0 = int(packed.voff[label]), int(packed.toff[label])
             table = packed.V[v0:v0 + k * nc].reshape(k, nc)
             dist = packed.D[v0:v0 + k * nc].reshape(k, nc)
@@ -107,7 +108,7 @@ class BlockCache:
                          packed.ridge[label:label + 1], packed.ages[t0:t0 + k], packed.bounds[t0:t0 + k],
                          packed.sigma[t0:t0 + k], packed.support[t0:t0 + k], np.ascontiguousarray(table[:, lo:hi]),
                          np.ascontiguousarray(dist[:, lo:hi]), np.array([label, lo, hi])):
-                digest.update(np.ascontiguousarray(part).tobytes())
+                digest.update(np.ascontiguousarray(part))
         return digest.hexdigest()
 
     def _last_build(self, chunks: tuple[int, int]) -> tuple[Path, dict] | None:
