@@ -34,14 +34,16 @@ def test_picks_reader_never_crashes(tmp_path, header, rows, prefix):
 
 
 number = st.one_of(st.floats(allow_nan=True, allow_infinity=True).map(repr), st.integers(-400, 400).map(str),
-                   st.sampled_from(["", " ", "1_0", " 7 ", "1e2", "-0", "nan", "inf", "x"]))
-record = st.fixed_dictionaries({"lon": number, "lat": number, "age_ma": number, "sigma_km": number,
+                   st.sampled_from(["", " ", "1_0", " 7 ", "1e2", "-0", "nan", "inf", "-inf", "x"]))
+# mostly valid values, so that whole tables pass and each field's odd values are met among valid neighbours
+field = st.one_of(st.floats(-80, 80).map(repr), st.sampled_from(["12.5", " 3 ", "0"]), number)
+record = st.fixed_dictionaries({"lon": field, "lat": field, "age_ma": field, "sigma_km": field,
                                 "chron": st.sampled_from(["", "C5n.2n", " C1n "]),
                                 "edge": st.sampled_from(["", "young", " OLD ", "old", "middle"])})
 
 
-@FUZZ
-@given(records=st.lists(record, min_size=1, max_size=6))
+@settings(max_examples=400, deadline=None)
+@given(records=st.lists(record, min_size=1, max_size=4))
 def test_column_parse_accepts_exactly_what_the_record_parse_accepts(records):
     """The fast column-by-column parse of a pick table gives the record-by-record result (the reference:
     each value through ``_parse_record``'s checks) or gives up; it never lets a value through that the
