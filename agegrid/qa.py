@@ -122,4 +122,3 @@ def check_picks(control, spec, compartments, settings, model) -> QAReport:
             unique.append(f)
     report.findings = unique
     return report
-

@@ -7,9 +7,7 @@ from hypothesis import strategies as st
 from agegrid import timescale
 from agegrid.config import load_build_file
 from agegrid.errors import BadInput
-import numpy as np
-
-from agegrid.io.points import _parse_columns, _parse_record, read_picks
+from agegrid.io.points import read_picks
 
 FUZZ = settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 
@@ -31,35 +29,6 @@ def test_picks_reader_never_crashes(tmp_path, header, rows, prefix):
         assert str(path) in str(exc)
         return
     assert len(table) == len(table.lat) and ((table.lat >= -90) & (table.lat <= 90)).all()
-
-
-number = st.one_of(st.floats(allow_nan=True, allow_infinity=True).map(repr), st.integers(-400, 400).map(str),
-                   st.sampled_from(["", " ", "1_0", " 7 ", "1e2", "-0", "nan", "inf", "-inf", "x"]))
-# mostly valid values, so that whole tables pass and each field's odd values are met among valid neighbours
-field = st.one_of(st.floats(-80, 80).map(repr), st.sampled_from(["12.5", " 3 ", "0"]), number)
-record = st.fixed_dictionaries({"lon": field, "lat": field, "age_ma": field, "sigma_km": field,
-                                "chron": st.sampled_from(["", "C5n.2n", " C1n "]),
-                                "edge": st.sampled_from(["", "young", " OLD ", "old", "middle"])})
-
-
-@settings(max_examples=400, deadline=None)
-@given(records=st.lists(record, min_size=1, max_size=4))
-def test_column_parse_accepts_exactly_what_the_record_parse_accepts(records):
-    """The fast column-by-column parse of a pick table gives the record-by-record result (the reference:
-    each value through ``_parse_record``'s checks) or gives up; it never lets a value through that the
-    record parse rejects."""
-    try:
-        expected = list(zip(*[_parse_record(r, "picks.csv", f"line {i}") for i, r in enumerate(records, 2)]))
-    except BadInput:
-        assert _parse_columns(records) is None
-        return
-    parsed = _parse_columns(records)
-    if parsed is not None:  # it may give up on text float() reads but the fast path does not expect
-        for got, want in zip(parsed, expected):
-            if isinstance(got, np.ndarray):
-                np.testing.assert_array_equal(got, np.array(want))
-            else:
-                assert list(got) == list(want)
 
 
 @FUZZ

@@ -83,40 +83,11 @@ def _parse_record(record: dict, path: Path, where: str) -> tuple:
     return lon, lat, age, chron, edge, sigma
 
 
-def _parse_columns(records: list[dict]) -> tuple | None:
-    """The columns :func:`_parse_record` gives, parsed column by column; None when any value is not a plain
-    valid entry (empty where required, not a number, not finite, out of range), for the record-by-record
-    parse to name.
-
-    Numbers go through ``float`` as there, so both accept exactly the same text.
-    """
-    try:
-        lon = np.array([float(r["lon"]) for r in records])
-        lat = np.array([float(r["lat"]) for r in records])
-        chron = [(r.get("chron") or "").strip() or None for r in records]
-        age_given = np.array([bool((r.get("age_ma") or "").strip()) or c is None for r, c in zip(records, chron)])
-        age = np.array([float(r["age_ma"]) if given else math.nan for r, given in zip(records, age_given)])
-        sigma_given = np.array([bool((r.get("sigma_km") or "").strip()) for r in records])
-        sigma = np.array([float(r["sigma_km"]) if given else math.nan for r, given in zip(records, sigma_given)])
-    except (KeyError, ValueError, TypeError):
-        return None
-    edge = [(r.get("edge") or "young").strip().lower() for r in records]
-    ages, sigmas = age[age_given], sigma[sigma_given]
-    valid = (np.isfinite(lon).all() and np.isfinite(lat).all() and np.all(np.abs(lat) <= 90)
-             and np.all(np.abs(lon) <= 360) and np.isfinite(ages).all() and np.all(ages >= 0)
-             and np.all(ages <= MAX_AGE_MA) and np.isfinite(sigmas).all() and np.all(sigmas > 0)
-             and set(edge) <= {"young", "old"})
-    return (lon, lat, age, chron, edge, sigma) if valid else None
-
-
 def _table(path, columns, records, where, geojson) -> PickTable:
     if not records:
         raise BadInput("no picks in the file", path)
-    parsed = _parse_columns(records)
-    if parsed is None:  # some value is wrong: the record-by-record parse names the first
-        lon, lat, age, chron, edge, sigma = zip(*[_parse_record(r, path, w) for r, w in zip(records, where)])
-    else:
-        lon, lat, age, chron, edge, sigma = parsed
+    parsed = [_parse_record(r, path, w) for r, w in zip(records, where)]
+    lon, lat, age, chron, edge, sigma = zip(*parsed)
     ids = [str(r.get("id") or "").strip() or f"{Path(path).stem}:{w.split()[-1]}"
            for r, w in zip(records, where)]
     return PickTable(
