@@ -829,8 +829,9 @@ def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str, ...] = LAYERS,
-               keys_in_tasks: bool = False) -> dict[str, da.Array]:
-    """The age-engine layers ``names`` (default: all) as lazy dask arrays, chunked like the grid.
+               keys_in_tasks: bool = False, dtypes: dict | None = None) -> dict[str, da.Array]:
+    """The age-engine layers ``names`` (default: all) as lazy dask arrays, chunked like the grid: float32, or
+    the type ``dtypes`` gives a layer (cast in the task that takes its plane, not in a task of its own).
 
     One task per block runs the kernel's pass for the parts the layers need: the age stage alone computes
     only the dating part; the kinematic layers with it take both parts in one pass. With a
@@ -887,11 +888,13 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
     stacks = da.map_blocks(block, template, dtype=np.float32, new_axis=0,
                            chunks=((len(LAYERS_OF[run]),),) + template.chunks,
                            meta=np.empty((0, 0, 0), np.float32), name=f"age-engine-{run}-{token}")
-    return {name: da.blockwise(_plane, "ij", stacks, "kij", LAYERS_OF[run].index(name), None, concatenate=False,
-                               dtype=np.float32, meta=np.empty((0, 0), np.float32), name=f"{name}-{token}")
+    dtypes = {name: np.dtype((dtypes or {}).get(name, np.float32)) for name in names}
+    return {name: da.blockwise(_plane, "ij", stacks, "kij", LAYERS_OF[run].index(name), None, dtypes[name], None,
+                               concatenate=False, dtype=dtypes[name], meta=np.empty((0, 0), dtypes[name]),
+                               name=f"{name}-{token}")
             for name in names}
 
 
-def _plane(stacks: list[np.ndarray], k: int) -> np.ndarray:
-    """Plane ``k`` of a block from the one-element list of its stacks (see :func:`age_layers`)."""
-    return stacks[0][k]
+def _plane(stacks: list[np.ndarray], k: int, dtype: np.dtype) -> np.ndarray:
+    """Plane ``k`` of a block from the one-element list of its stacks (see :func:`age_layers`), as ``dtype``."""
+    return stacks[0][k].astype(dtype, copy=False)

@@ -185,15 +185,14 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
     facts["age_model"] = {"compartments_with_control": len(model.compartments), "dropped_traces": model.dropped,
                           "outlier_control_points": int(len(model.outliers)),
                           "picks_left_out_as_inconsistent": [inputs["picks"].ids[i] for i in outliers if i >= 0]}
+    dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16, "compartment": np.int32,
+              "flank": np.int8}
     with stages("block keys" if cache is not None else "age layers"):
-        layers = age_layers(spec, comps, model, cache, keys_in_tasks=in_process)
+        layers = age_layers(spec, comps, model, cache, keys_in_tasks=in_process, dtypes=dtypes)
     if cache is not None:
         facts["cache"] = cache.summary()
         log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, cache.blocks,
                  cache.blocks - cache.reused)
-    dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16, "compartment": np.int32,
-              "flank": np.int8}
-    layers = {k: v.astype(dtypes.get(k, np.float32)) for k, v in layers.items()}
     attrs = {name: attributes(name) for name in layers}
     attrs["age_flag"]["flag_values"] = np.array(attrs["age_flag"]["flag_values"], dtype=np.int8)
     for name in ("age_bracket_young", "age_bracket_old"):

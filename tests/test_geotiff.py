@@ -224,3 +224,27 @@ def test_full_resolution_inserted_behind_or_copied_gives_the_same_bytes(tmp_path
     if tiff._insert_front(probe, tiff.ALIGNMENT):  # this file system inserts ranges: the in-place path was taken
         assert probe.read_bytes() == b"\0" * tiff.ALIGNMENT + b"x" * 2 * tiff.ALIGNMENT
         assert not stayed
+
+
+def test_edge_tiles_are_padded_with_the_fill(tmp_path):
+    """The part of an edge tile past the image holds the layer's fill (so identical builds give identical
+    bytes): the corner tile decoded with zlib, independently of GDAL, which never shows that part."""
+    import zlib
+
+    staged, values = write_cogs(tmp_path, (256, 256))
+    data = staged["age"].read_bytes()
+    tags = tiff.read_tags(data)
+    tile = int(np.frombuffer(tags[tiff.TILE_WIDTH].raw, "<u2")[0])
+    offsets = np.frombuffer(tags[tiff.TILE_OFFSETS].raw, "<u4")
+    counts = np.frombuffer(tags[tiff.TILE_BYTE_COUNTS].raw, "<u4")
+    ny, nx = values["age"].shape
+    across = -(-nx // tile)
+    corner = len(offsets) - 1  # the bottom-right tile: ragged both ways
+    decoded = np.frombuffer(zlib.decompress(data[offsets[corner]:offsets[corner] + counts[corner]]), "<f4")
+    decoded = decoded.reshape(tile, tile)
+    h, w = ny - (corner // across) * tile, nx - (corner % across) * tile
+    assert 0 < h < tile and 0 < w < tile
+    assert np.isnan(decoded[h:]).all() and np.isnan(decoded[:h, w:]).all()
+    np.testing.assert_array_equal(decoded[:h, :w], values["age"][-h:, -w:])
+    again, _ = write_cogs(tmp_path, (100, 300), tag="-again")
+    assert again["age"].read_bytes() == data

@@ -209,11 +209,10 @@ class _Pyramid:
                     continue
                 th, tw = self.tile_extent(level, ti, tj)
                 entry = self.open[level].get((ti, tj))
-                if entry is None:  # a tile inside the image is written whole before it is finished
-                    if th == tw == self.tile:
-                        blank = np.empty((self.tile, self.tile), dtype=self.dtype)
-                    else:
-                        blank = np.full((self.tile, self.tile), self.fill, dtype=self.dtype)
+                if entry is None:  # the image's part of a tile is written whole before it is finished
+                    blank = np.empty((self.tile, self.tile), dtype=self.dtype)
+                    blank[th:] = self.fill  # the part past the image's edge: the fill
+                    blank[:th, tw:] = self.fill
                     entry = self.open[level][(ti, tj)] = [blank, 0]
                 entry[0][rs.start - top:rs.stop - top, cs.start - left:cs.stop - left] = \
                     values[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
