@@ -1,6 +1,9 @@
 """The manifest's file digests and package versions, against the standard library's own readings."""
 import hashlib
+import subprocess
+import sys
 from importlib.metadata import PackageNotFoundError, version
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -27,3 +30,37 @@ def test_installed_versions_are_importlib_metadata_versions():
         assert installed_version(name) == expected
         checked += 1
     assert checked >= 10
+
+
+HASH_PEAK = """
+import sys
+from pathlib import Path
+from agegrid import manifest
+
+def peak_mb():
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+
+manifest.HASH_WINDOW_BYTES = int(sys.argv[2])
+before = peak_mb()
+manifest.sha256(Path(sys.argv[1]))
+print(peak_mb() - before)
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads the kernel's VmHWM")
+def test_hashing_a_large_file_keeps_the_peak_memory_bounded(tmp_path):
+    """Mapped pages count in a process's resident memory: hashing 256 MB window by window raises the peak
+    by little, where mapping the whole file at once raises it by the file's size (the check that the
+    measure sees mapped pages)."""
+    path = tmp_path / "large.bin"
+    with open(path, "wb") as fh:
+        fh.truncate(256 * 2**20)  # a file of holes: its pages are made as they are read
+    grown = {}
+    for window in (16 * 2**20, 2**30):
+        out = subprocess.run([sys.executable, "-c", HASH_PEAK, str(path), str(window)], capture_output=True,
+                             text=True, check=True)
+        grown[window] = float(out.stdout)
+    assert grown[2**30] > 200
+    assert grown[16 * 2**20] < 64
