@@ -23,16 +23,25 @@ def sha256(path: Path) -> str:
     stat = os.stat(path)
     key = (str(Path(path).resolve()), stat.st_size, stat.st_mtime_ns, stat.st_ino, stat.st_dev)
     if key not in _DIGESTS:
-        digest = hashlib.sha256()
         with open(path, "rb") as fh:
-            # hashed where the file's pages are, without copying them (9 % less CPU), a window at a time: a
-            # mapped page counts in the process's resident memory until it is unmapped
-            for offset in range(0, stat.st_size, HASH_WINDOW_BYTES):
-                length = min(HASH_WINDOW_BYTES, stat.st_size - offset)
-                with mmap.mmap(fh.fileno(), length, offset=offset, access=mmap.ACCESS_READ) as pages:
-                    digest.update(pages)
+            try:
+                digest = _mapped_digest(fh, stat.st_size)
+            except (OSError, ValueError):  # a file that cannot be mapped (some file systems): read it
+                fh.seek(0)
+                digest = hashlib.file_digest(fh, "sha256")
         _DIGESTS[key] = digest.hexdigest()
     return _DIGESTS[key]
+
+
+def _mapped_digest(fh, size: int):
+    """SHA-256 of an open file hashed where its pages are, without copying them (9 % less CPU than reading
+    it), a window at a time: a mapped page counts in the process's resident memory until it is unmapped."""
+    digest = hashlib.sha256()
+    for offset in range(0, size, HASH_WINDOW_BYTES):
+        with mmap.mmap(fh.fileno(), min(HASH_WINDOW_BYTES, size - offset), offset=offset,
+                       access=mmap.ACCESS_READ) as pages:
+            digest.update(pages)
+    return digest
 
 
 _DIGESTS: dict[tuple, str] = {}

@@ -64,3 +64,17 @@ def test_hashing_a_large_file_keeps_the_peak_memory_bounded(tmp_path):
         grown[window] = float(out.stdout)
     assert grown[2**30] > 200
     assert grown[16 * 2**20] < 64
+
+
+def test_sha256_reads_a_file_that_cannot_be_mapped(tmp_path, monkeypatch):
+    """Some file systems refuse memory maps: the file is then read."""
+    import mmap
+
+    def refuse(*args, **kwargs):
+        raise OSError(19, "No such device")
+
+    path = tmp_path / "unmappable.bin"
+    data = b"seafloor" * 100_000
+    path.write_bytes(data)
+    monkeypatch.setattr(mmap, "mmap", refuse)
+    assert sha256(path) == hashlib.sha256(data).hexdigest()
