@@ -57,6 +57,7 @@ from numba import njit
 
 from agegrid import sphere
 from agegrid.age_kernel import BOTH, DATING, MIN_COS_FROM_CENTRE, MOTION, PARTS, column_span
+from agegrid.streaming import Plane
 
 log = logging.getLogger("agegrid")
 
@@ -830,8 +831,16 @@ def block_xyz(spec, rows, cols) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str, ...] = LAYERS,
                keys_in_tasks: bool = False, dtypes: dict | None = None) -> dict[str, da.Array]:
-    """The age-engine layers ``names`` (default: all) as lazy dask arrays, chunked like the grid: float32, or
-    the type ``dtypes`` gives a layer (cast in the task that takes its plane, not in a task of its own).
+    """The age-engine layers ``names`` (default: all) as lazy dask arrays, chunked like the grid: the arrays
+    of :func:`age_planes` (same arguments)."""
+    return {name: plane.array() for name, plane in age_planes(spec, compartments, model, cache, names,
+                                                              keys_in_tasks, dtypes).items()}
+
+
+def age_planes(spec, compartments, model: AgeModel, cache=None, names: tuple[str, ...] = LAYERS,
+               keys_in_tasks: bool = False, dtypes: dict | None = None) -> dict[str, Plane]:
+    """The age-engine layers ``names`` (default: all) as planes of one lazy stack blocked like the grid:
+    float32, or the type ``dtypes`` gives a layer.
 
     One task per block runs the kernel's pass for the parts the layers need: the age stage alone computes
     only the dating part; the kinematic layers with it take both parts in one pass. With a
@@ -845,7 +854,6 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
     chunks = spec.chunks
     # tasks named by one random token: dask would otherwise pickle the model and the labels to hash them
     token = uuid.uuid4().hex
-    template = da.empty(spec.shape, chunks=chunks, dtype=np.int32, name=f"age-grid-{token}")
     packed = PackedModel.pack(model)
     settings = model.settings
 
@@ -855,7 +863,7 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
 
     recording = cache is not None and keys_in_tasks and not cache.can_serve(chunks)
     if cache is not None:
-        rows, cols = template.chunks
+        rows, cols = spec.block_sizes
         r_edges, c_edges = np.cumsum((0,) + rows), np.cumsum((0,) + cols)
         blocks = [(i, j) for i in range(len(rows)) for j in range(len(cols))]
         cache.blocks = len(blocks)
@@ -869,10 +877,10 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
             with ThreadPoolExecutor(os.cpu_count() or 1) as pool:  # hashing releases the GIL
                 cache.plan(dict(zip(blocks, pool.map(key, blocks))), chunks)
 
-    def block(_, block_info=None):
-        info = block_info[0]
-        (r0, r1), (c0, c1) = info["array-location"]
-        window, location = (slice(r0, r1), slice(c0, c1)), tuple(info["chunk-location"])
+    def block(block_info=None):
+        info = block_info[None]
+        _, (r0, r1), (c0, c1) = info["array-location"]
+        window, location = (slice(r0, r1), slice(c0, c1)), tuple(info["chunk-location"][1:])
         stored = None
         if cache is not None and run != "motion":  # only the dating part is read back; motion is computed
             stored = cache.load(location, window, LAYERS_OF["dating"])
@@ -884,17 +892,7 @@ def age_layers(spec, compartments, model: AgeModel, cache=None, names: tuple[str
             cache.record(location, block_key(location, labels, domain, factors))
         return evaluate_block(packed, settings, labels, domain, factors, run, stored)
 
-    # each layer is a view of its block's planes (blockwise without concatenation), not a copy
-    stacks = da.map_blocks(block, template, dtype=np.float32, new_axis=0,
-                           chunks=((len(LAYERS_OF[run]),),) + template.chunks,
+    stacks = da.map_blocks(block, dtype=np.float32, chunks=((len(LAYERS_OF[run]),),) + spec.block_sizes,
                            meta=np.empty((0, 0, 0), np.float32), name=f"age-engine-{run}-{token}")
-    dtypes = {name: np.dtype((dtypes or {}).get(name, np.float32)) for name in names}
-    return {name: da.blockwise(_plane, "ij", stacks, "kij", LAYERS_OF[run].index(name), None, dtypes[name], None,
-                               concatenate=False, dtype=dtypes[name], meta=np.empty((0, 0), dtypes[name]),
-                               name=f"{name}-{token}")
+    return {name: Plane(name, stacks, LAYERS_OF[run].index(name), np.dtype((dtypes or {}).get(name, np.float32)))
             for name in names}
-
-
-def _plane(stacks: list[np.ndarray], k: int, dtype: np.dtype) -> np.ndarray:
-    """Plane ``k`` of a block from the one-element list of its stacks (see :func:`age_layers`), as ``dtype``."""
-    return stacks[0][k].astype(dtype, copy=False)

@@ -49,7 +49,7 @@ def cmd_validate(args) -> int:
     config = load_build_file(args.config)
     inputs = read_inputs(config)
     with contextlib.ExitStack() as opened:
-        layers, _, facts = compute_layers(config, inputs, Stages(), opened)
+        layers, _, facts, _ = compute_layers(config, inputs, Stages(), opened)
         if inputs["profiles"] is not None:  # the magnetic check needs the grids: computed in memory, not written
             import dask
             import xarray as xr

@@ -79,6 +79,12 @@ class GridSpec:
         return min(self.chunk, ny), min(self.chunk, nx)
 
     @property
+    def block_sizes(self) -> tuple[tuple[int, ...], tuple[int, ...]]:
+        """Rows of every block row and columns of every block column (dask's ``chunks`` of the grid)."""
+        return tuple(tuple(min(side, n - start) for start in range(0, n, side))
+                     for n, side in zip(self.shape, self.chunks))
+
+    @property
     def is_global(self) -> bool:
         """True for a geographic grid that wraps all the way round in longitude."""
         return self.geographic and abs(self.shape[1] * self.spacing - 360.0) < 1e-6 * self.spacing

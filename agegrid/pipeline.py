@@ -20,7 +20,7 @@ import numpy as np
 import xarray as xr
 
 from agegrid import __version__, thermal, timescale
-from agegrid.age import LAYERS, Settings, age_layers, build_age_model
+from agegrid.age import LAYERS, Settings, age_planes, build_age_model
 from agegrid.allocator import keep_freed_memory
 from agegrid.bathymetry import depth_sign
 from agegrid.cache import KEPT_NETCDF, BlockCache, fingerprint, up_to_date
@@ -147,10 +147,11 @@ def plan(config) -> dict:
 
 
 def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.ExitStack,
-                   cache=None, in_process: bool = True) -> tuple[dict, dict, dict]:
-    """All output layers as lazy arrays, with their attributes and the facts for the manifest; input grids
-    read block by block stay open until ``opened`` closes. ``in_process``: the layers will be computed on
-    this process's threads (not by distributed workers)."""
+                   cache=None, in_process: bool = True) -> tuple[dict, dict, dict, dict]:
+    """All output layers as lazy arrays, with their attributes, the facts for the manifest and the age
+    engine's layers as :class:`~agegrid.streaming.Plane` (for the streaming pass); input grids read block by
+    block stay open until ``opened`` closes. ``in_process``: the layers will be computed on this process's
+    threads (not by distributed workers)."""
     spec = GridSpec.from_config(config.grid)
     spec.check_size(LAYERS_IN_MEMORY, config.source)
     facts: dict = {"notes": []}
@@ -188,7 +189,8 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
     dtypes = {"age_flag": np.int8, "age_bracket_young": np.int16, "age_bracket_old": np.int16, "compartment": np.int32,
               "flank": np.int8}
     with stages("block keys" if cache is not None else "age layers"):
-        layers = age_layers(spec, comps, model, cache, keys_in_tasks=in_process, dtypes=dtypes)
+        planes = age_planes(spec, comps, model, cache, keys_in_tasks=in_process, dtypes=dtypes)
+        layers = {name: plane.array() for name, plane in planes.items()}
     if cache is not None:
         facts["cache"] = cache.summary()
         log.info("%d of %d blocks unchanged, read from the cache; %d to compute", cache.reused, cache.blocks,
@@ -258,7 +260,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
     facts["timescale"] = scale.describe()
     facts["models"] = {name: m.describe() for name, m in _models(config).items()}
     facts["model_labels"] = model.labels
-    return layers, attrs, facts
+    return layers, attrs, facts, planes
 
 
 def _global_attrs(config, facts) -> dict:
@@ -382,7 +384,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         cache = BlockCache(out_dir, enabled=not force)
         with stages("read inputs"):
             inputs = read_inputs(config)
-        layers, attrs, facts = compute_layers(config, inputs, stages, opened, cache,
+        layers, attrs, facts, planes = compute_layers(config, inputs, stages, opened, cache,
                                               in_process=not (address or workers))
         spec = GridSpec.from_config(config.grid)
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
@@ -399,7 +401,8 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
                     sinks.append(cogs.write)
                 with stages("compute and write layers"), _progress(progress and sched["kind"] == "threads"):
                     staged_nc = write_netcdf(ds, nc_target, spec, sinks,
-                                             tiles=cogs if config.output.netcdf_shares_cog_tiles else None)
+                                             tiles=cogs if config.output.netcdf_shares_cog_tiles else None,
+                                             planes=planes)
                 if "netcdf" in config.output.formats:
                     staged[nc_target] = staged_nc
                     hashes.start(staged_nc)  # while the COGs are assembled and the tables made

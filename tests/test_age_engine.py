@@ -9,6 +9,7 @@ import pytest
 from scipy.interpolate import griddata
 
 from agegrid import age, sphere, timescale
+from agegrid.grid import GridSpec
 from agegrid.synthetic import Stage, SyntheticBasin
 from tests.engine import run_engine
 from tests.helpers import scores
@@ -315,6 +316,15 @@ def test_chunk_size_does_not_change_results(tmp_path):
     b = run_engine(tmp_path, basin, tracks=30, seed=5, spacing=0.1, chunk=512)
     for name in a.layers:
         assert np.array_equal(a.layers[name], b.layers[name], equal_nan=True), name
+
+
+@pytest.mark.parametrize("spacing, chunk", [(0.1, 64), (0.1, 7), (0.5, 512), (0.025, 512)])
+def test_grid_block_sizes_are_the_chunks_dask_makes(spacing, chunk):
+    # reference: dask's own normalisation of the block side over the grid's shape (ragged last blocks)
+    from dask.array.core import normalize_chunks
+
+    spec = GridSpec(SyntheticBasin().region(0.5), spacing, chunk=chunk)
+    assert spec.block_sizes == normalize_chunks(spec.chunks, spec.shape)
 
 
 def test_antimeridian_region_is_seamless(tmp_path):

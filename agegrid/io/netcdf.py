@@ -86,13 +86,11 @@ def dataset(spec, layers: dict, attrs: dict, global_attrs: dict) -> xr.Dataset:
 def _lonlat_layers(spec):
     import dask.array as da
 
-    template = da.zeros(spec.shape, chunks=spec.chunks, dtype=np.float64)
-
-    def part(block, index, block_info=None):
-        (r0, r1), (c0, c1) = block_info[0]["array-location"]
+    def part(index, block_info=None):
+        (r0, r1), (c0, c1) = block_info[None]["array-location"]
         return spec.lonlat(slice(r0, r1), slice(c0, c1))[index]
 
-    return (da.map_blocks(part, template, 0, dtype=np.float64), da.map_blocks(part, template, 1, dtype=np.float64))
+    return tuple(da.map_blocks(part, index, dtype=np.float64, chunks=spec.block_sizes) for index in (0, 1))
 
 
 def encoding(ds: xr.Dataset, spec, tiled: dict[str, tuple[int, int]] | None = None) -> dict:
@@ -233,7 +231,7 @@ def _deflated(part: np.ndarray, chunks: tuple[int, int], fill) -> bytes:
     return isal_zlib.compress(shuffled, COMPRESSION_LEVEL)
 
 
-def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None) -> Path:
+def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None, planes=None) -> Path:
     """Write a dataset to a staged file beside ``target``; returns the staged path (not yet renamed).
 
     The structure is written first (:func:`create_netcdf`); the 2-D layers are then computed window by
@@ -244,6 +242,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None)
     ``tiles``, a :class:`~agegrid.io.geotiff.CogWriter` among the sinks whose tiles are plain zlib
     streams, lends its full-resolution tiles to the layers it writes: they are stored as the NetCDF's
     chunks (the tiles' shape, deflate without shuffle), so each is compressed once for both files.
+    ``planes``: layers the pass takes from stacked blocks (see :class:`~agegrid.streaming.Plane`).
     """
     import dask.array as da
 
@@ -264,7 +263,7 @@ def write_netcdf(ds: xr.Dataset, target: Path, spec, extra_sinks=(), tiles=None)
         if tiled:
             tiles.on_tile = writer.write_encoded
         try:
-            stream(ds, layers, [writer.write, *extra_sinks])
+            stream(ds, layers, [writer.write, *extra_sinks], planes=planes)
             if tiled:
                 tiles.drain()
         finally:

@@ -300,15 +300,13 @@ def grid_blocks(path: str | Path, spec, opened: contextlib.ExitStack) -> tuple[d
     opened.callback(source.close)
     if not _any_finite(source, *covering):
         raise BadInput(EMPTY, path)
-    token = uuid.uuid4().hex  # dask would otherwise hash the reader
-    template = da.empty(spec.shape, chunks=spec.chunks, dtype=np.float32, name=f"input-cells-{token}")
-
-    def block(_, block_info=None):
-        (r0, r1), (c0, c1) = block_info[0]["array-location"]
+    def block(block_info=None):
+        (r0, r1), (c0, c1) = block_info[None]["array-location"]
         return resample(source, spec, slice(r0, r1), slice(c0, c1))
 
-    return da.map_blocks(block, template, dtype=np.float32, meta=np.empty((0, 0), np.float32),
-                         name=f"input-grid-{token}"), attrs
+    # named by a random token: dask would otherwise hash the reader
+    return da.map_blocks(block, dtype=np.float32, chunks=spec.block_sizes, meta=np.empty((0, 0), np.float32),
+                         name=f"input-grid-{uuid.uuid4().hex}"), attrs
 
 
 def _any_finite(source: SourceGrid, rows: slice, cols: slice, probes: int = 8, strip: int = 256) -> bool:
