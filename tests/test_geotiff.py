@@ -6,7 +6,7 @@ from rasterio.io import MemoryFile
 
 from agegrid.grid import GridSpec
 from agegrid.io import tiff
-from agegrid.io.geotiff import CogWriter
+from agegrid.io.geotiff import COPIED_TAGS, GDAL_METADATA, GDAL_NODATA, CogWriter, georeferencing_tags
 
 REGION, SPACING = (10.0, 30.0, -5.0, 12.0), 0.03  # 567 x 667 cells: two overview levels, ragged edge tiles
 
@@ -248,3 +248,28 @@ def test_edge_tiles_are_padded_with_the_fill(tmp_path):
     np.testing.assert_array_equal(decoded[:h, :w], values["age"][-h:, -w:])
     again, _ = write_cogs(tmp_path, (100, 300), tag="-again")
     assert again["age"].read_bytes() == data
+
+
+def test_tags_of_many_layers_are_those_gdal_writes_for_each_layer_alone():
+    # reference: GDAL's own one-band GeoTIFF of each layer (its georeferencing, nodata and metadata tags);
+    # the layers are of several types and fills, with text XML must escape, a line break and no attributes
+    spec = GridSpec(REGION, SPACING)
+    crs = rasterio.crs.CRS.from_wkt(spec.pyproj_crs.to_wkt())
+    layers = {"age": (np.dtype(np.float32), np.nan, {"long_name": "crustal age", "units": "Myr",
+                                                     "comment": 'young < old & "dated"\nsecond line'}),
+              "age_flag": (np.dtype(np.int8), -128, {"long_name": "how", "units": "1", "flag_values": "1 2 3"}),
+              "bare": (np.dtype(np.float32), np.nan, {}),
+              "depth": (np.dtype(np.float32), np.nan, {"units": "m"}),
+              "count": (np.dtype(np.int16), -1, {"long_name": "count"})}
+    got = georeferencing_tags(spec, layers)
+    for name, (dtype, fill, attrs) in layers.items():
+        with MemoryFile() as memory:
+            with memory.open(driver="GTiff", width=1, height=1, count=1, dtype=dtype.name, crs=crs,
+                             transform=spec.transform, nodata=fill) as band:
+                band.set_band_description(1, str(attrs.get("long_name", name)))
+                band.update_tags(1, **{k: str(v) for k, v in attrs.items()})
+                if attrs.get("units"):
+                    band.set_band_unit(1, str(attrs["units"]))
+            alone = tiff.read_tags(memory.read())
+        assert got[name] == {code: alone[code] for code in COPIED_TAGS if code in alone}, name
+        assert GDAL_METADATA in got[name] and GDAL_NODATA in got[name]
