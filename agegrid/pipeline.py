@@ -385,7 +385,7 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
         with stages("read inputs"):
             inputs = read_inputs(config)
         layers, attrs, facts, planes = compute_layers(config, inputs, stages, opened, cache,
-                                              in_process=not (address or workers))
+                                                      in_process=not (address or workers))
         spec = GridSpec.from_config(config.grid)
         ds = dataset(spec, layers, attrs, _global_attrs(config, facts))
         samples = Samples(spec, _sampled_layers(config), TABLE_CELLS)

@@ -300,6 +300,7 @@ def grid_blocks(path: str | Path, spec, opened: contextlib.ExitStack) -> tuple[d
     opened.callback(source.close)
     if not _any_finite(source, *covering):
         raise BadInput(EMPTY, path)
+
     def block(block_info=None):
         (r0, r1), (c0, c1) = block_info[None]["array-location"]
         return resample(source, spec, slice(r0, r1), slice(c0, c1))
