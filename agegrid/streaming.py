@@ -58,11 +58,12 @@ class Plane:
 
     def of(self, block: np.ndarray) -> np.ndarray:
         """The layer's part of a block of the stack."""
-        return block[self.index].astype(self.dtype, copy=False)
+        return _plane([block], self.index, self.dtype)
 
 
 def _plane(stacks: list[np.ndarray], k: int, dtype: np.dtype) -> np.ndarray:
-    """Plane ``k`` of a block from the one-element list of its stacks (see :meth:`Plane.array`), as ``dtype``."""
+    """Plane ``k`` of a block from the one-element list of its stacks (as :meth:`Plane.array`'s tasks get it),
+    as ``dtype``."""
     return stacks[0][k].astype(dtype, copy=False)
 
 

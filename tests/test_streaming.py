@@ -64,6 +64,8 @@ def test_planes_are_taken_from_the_stack_blocks_without_tasks_of_their_own(windo
 
 
 def test_windows_cover_every_block_once_within_their_memory():
+    # agegrid's own rule (no outside reference): runs of whole blocks along a block row, row-major, each within
+    # the window's memory unless one block alone exceeds it
     sizes = ((7, 7, 6), (7, 7, 7, 2))
     per_cell = 40
     for window_mb in (1e-9, 7 * 14 * per_cell / 2**20, 1.0):

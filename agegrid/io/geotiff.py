@@ -352,7 +352,7 @@ def georeferencing_tags(spec, layers: dict[str, tuple[np.dtype, object, dict]]) 
                 if items.get(band):
                     text = b"<GDALMetadata>\n%s</GDALMetadata>\n\0" % b"".join(b"  %s\n" % item for item in items[band])
                     out[name][GDAL_METADATA] = tiff.Tag(tiff.ASCII, len(text), text)
-    return {name: dict(sorted(out[name].items(), key=lambda kv: COPIED_TAGS.index(kv[0]))) for name in layers}
+    return out
 
 
 def _metadata_items(raw: bytes) -> dict[int, list[bytes]]:
