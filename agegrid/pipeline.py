@@ -46,7 +46,7 @@ from agegrid.qa import check_picks
 from agegrid.report import build_report
 from agegrid.residual import AgeBins, fit_sqrt_age, residual
 from agegrid.sediment import lithology_from_config
-from agegrid.streaming import Samples
+from agegrid.streaming import Plane, Samples
 from agegrid.variables import attributes
 
 log = logging.getLogger("agegrid")
@@ -113,6 +113,35 @@ def _engine_settings(config) -> Settings:
 
 def _models(config) -> dict:
     return {name: thermal.get_model(name, config.depth.parameters.get(name)) for name in config.depth.models}
+
+
+def cooling_planes(models: dict, age: Plane, corrected: da.Array | None = None) -> dict[str, Plane]:
+    """Each model's ``depth_<model>`` and ``heat_flow_<model>`` layers, and ``residual_<model>`` against the
+    ``corrected`` observed depth when given, as planes of one task per model and block that reads the age
+    from the age engine's block (one task for the model's layers, not a task per layer and one for the age)."""
+    kinds = ("depth", "heat_flow") + (("residual",) if corrected is not None else ())
+    inputs = [age.stack, "kij"] + ([corrected, "ij"] if corrected is not None else [])
+    planes = {}
+    for name, model in models.items():
+        stack = da.blockwise(_cooling_block, "mij", *inputs, new_axes={"m": len(kinds)}, concatenate=False,
+                             dtype=np.float32, meta=np.empty((0, 0, 0), np.float32),
+                             name=f"cooling-{name}-{age.stack.name}", model=model, index=age.index)
+        planes.update({f"{kind}_{name}": Plane(f"{kind}_{name}", stack, k, np.dtype(np.float32))
+                       for k, kind in enumerate(kinds)})
+    return planes
+
+
+def _cooling_block(stacks: list[np.ndarray], corrected: np.ndarray | None = None, *, model, index: int
+                   ) -> np.ndarray:
+    """Depth, heat flow and (with ``corrected``) residual of a block, from plane ``index`` of its age-engine
+    block (given as the one-element list of its stacks)."""
+    age = stacks[0][index]
+    out = np.empty((2 if corrected is None else 3, *age.shape), np.float32)
+    out[0] = model.depth(age)
+    out[1] = model.heat_flow(age)
+    if corrected is not None:
+        out[2] = residual(out[0], corrected)
+    return out
 
 
 def plan(config) -> dict:
@@ -204,15 +233,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
     attrs["age"]["comment"] = ("distance-ratio interpolation between bracketing isochron traces within "
                                "compartments bounded by barriers; see age_flag")
     age = layers["age"]
-    for name, cooling in _models(config).items():
-        layers[f"depth_{name}"] = _elementwise(cooling.depth, age)
-        layers[f"heat_flow_{name}"] = _elementwise(cooling.heat_flow, age)
-        attrs[f"depth_{name}"] = attributes(f"depth_{name}")
-        attrs[f"heat_flow_{name}"] = attributes(f"heat_flow_{name}")
-        if config.depth.isotherm_c is not None:
-            t_iso = config.depth.isotherm_c
-            layers[f"isotherm_depth_{name}"] = _elementwise(lambda a, c=cooling: c.isotherm_depth(a, t_iso), age)
-            attrs[f"isotherm_depth_{name}"] = {**attributes(f"isotherm_depth_{name}"), "isotherm_c": t_iso}
+    cooling_layers, corrected = {}, None
     if config.inputs.bathymetry:
         with stages("observed depth"):
             # grids in the build's CRS are read block by block in the streaming pass (see grid_blocks)
@@ -220,22 +241,35 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
             is_depth, statement = depth_sign(source_attrs, config.depth.bathymetry_sign, observed.compute)
             facts["notes"].append(statement)
             log.info(statement)
-            layers["observed_depth"] = corrected = observed if is_depth else -observed
+            cooling_layers["observed_depth"] = corrected = observed if is_depth else -observed
             attrs["observed_depth"] = {**attributes("observed_depth"), "comment": statement}
             if config.inputs.sediment:
                 thickness, _ = grid_blocks(config.inputs.sediment, spec, opened)
                 lith = lithology_from_config(config.sediment)
                 correction = _elementwise(lith.correction, thickness)
                 corrected = corrected + da.where(da.isfinite(correction), correction, np.float32(0))
-                layers["sediment_correction"] = correction
+                cooling_layers["sediment_correction"] = correction
                 attrs["sediment_correction"] = {**attributes("sediment_correction"),
                                                 "comment": f"Airy unloading, {lith.name}: {lith.reference}"}
                 facts["sediment"] = {k: getattr(lith, k) for k in ("name", "surface_porosity", "compaction_per_km",
                                                                    "grain_density", "mantle_density",
                                                                    "water_density", "reference")}
-            for name in config.depth.models:
-                layers[f"residual_{name}"] = residual(layers[f"depth_{name}"], corrected).astype(np.float32)
-                attrs[f"residual_{name}"] = attributes(f"residual_{name}")
+    models = _models(config)
+    cooling = cooling_planes(models, planes["age"], corrected)
+    planes.update(cooling)
+    for name, cooling_model in models.items():
+        for kind in ("depth", "heat_flow"):
+            layers[f"{kind}_{name}"] = cooling[f"{kind}_{name}"].array()
+            attrs[f"{kind}_{name}"] = attributes(f"{kind}_{name}")
+        if config.depth.isotherm_c is not None:
+            t_iso = config.depth.isotherm_c
+            layers[f"isotherm_depth_{name}"] = _elementwise(lambda a, m=cooling_model: m.isotherm_depth(a, t_iso), age)
+            attrs[f"isotherm_depth_{name}"] = {**attributes(f"isotherm_depth_{name}"), "isotherm_c": t_iso}
+    layers.update(cooling_layers)
+    if corrected is not None:
+        for name in models:
+            layers[f"residual_{name}"] = cooling[f"residual_{name}"].array()
+            attrs[f"residual_{name}"] = attributes(f"residual_{name}")
     if magnetic_enabled(config):
         with stages("magnetic model"):
             top_name = "observed_depth" if "observed_depth" in layers else f"depth_{config.depth.models[0]}"

@@ -107,3 +107,45 @@ def test_float32_ages_give_the_float64_values_rounded_once(name):
 def test_unknown_parameter_refused():
     with pytest.raises(ValueError, match="no parameter"):
         MODELS["plate"].with_parameters(thickness=100)
+
+
+@pytest.mark.parametrize("with_observed", [True, False])
+def test_cooling_planes_of_a_grid_are_the_models_on_its_ages(with_observed):
+    # the build's depth, heat-flow and residual layers, one task per model and block reading the age from the
+    # age engine's stacked blocks, equal each model evaluated on the whole age grid (the published formulas
+    # are checked above) and depth minus the observed depth (numpy); dask's record of the tasks it ran shows
+    # one task per model and block
+    import dask.array as da
+    from dask.callbacks import Callback
+
+    from agegrid.pipeline import cooling_planes
+    from agegrid.streaming import Plane
+
+    rng = np.random.default_rng(5)
+    stack = rng.uniform(-1.0, 190.0, size=(3, 23, 31)).astype(np.float32)
+    stack[1, 4:9, 2:6] = np.nan
+    chunks = ((3,), (10, 10, 3), (16, 15))
+    age = Plane("age", da.from_array(stack, chunks=chunks), 1, np.dtype(np.float32))
+    observed = rng.uniform(2000.0, 6000.0, size=(23, 31)).astype(np.float32)
+    models = {name: MODELS[name] for name in ("gdh1", "ps77", "hsc")}
+    planes = cooling_planes(models, age, da.from_array(observed, chunks=chunks[1:]) if with_observed else None)
+    assert set(planes) == {f"{kind}_{m}" for m in models
+                           for kind in ("depth", "heat_flow") + (("residual",) if with_observed else ())}
+    ran = []
+
+    class Executed(Callback):
+        def _pretask(self, key, dsk, state):
+            ran.append(key)
+
+    with Executed():
+        stacks = {m: planes[f"depth_{m}"].stack.compute() for m in models}
+    assert sum(1 for key in ran if key[0].startswith("cooling-")) == 3 * 3 * 2
+    for name, model in models.items():
+        for kind, expected in (("depth", model.depth(stack[1])), ("heat_flow", model.heat_flow(stack[1]))):
+            plane = planes[f"{kind}_{name}"]
+            np.testing.assert_array_equal(plane.of(stacks[name]), expected)
+            np.testing.assert_array_equal(plane.array().compute(), expected)
+            assert plane.array().dtype == np.float32
+        if with_observed:
+            np.testing.assert_array_equal(planes[f"residual_{name}"].array().compute(),
+                                          model.depth(stack[1]) - observed)
