@@ -233,7 +233,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
     attrs["age"]["comment"] = ("distance-ratio interpolation between bracketing isochron traces within "
                                "compartments bounded by barriers; see age_flag")
     age = layers["age"]
-    cooling_layers, corrected = {}, None
+    observed_layers, corrected = {}, None
     if config.inputs.bathymetry:
         with stages("observed depth"):
             # grids in the build's CRS are read block by block in the streaming pass (see grid_blocks)
@@ -241,14 +241,14 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
             is_depth, statement = depth_sign(source_attrs, config.depth.bathymetry_sign, observed.compute)
             facts["notes"].append(statement)
             log.info(statement)
-            cooling_layers["observed_depth"] = corrected = observed if is_depth else -observed
+            observed_layers["observed_depth"] = corrected = observed if is_depth else -observed
             attrs["observed_depth"] = {**attributes("observed_depth"), "comment": statement}
             if config.inputs.sediment:
                 thickness, _ = grid_blocks(config.inputs.sediment, spec, opened)
                 lith = lithology_from_config(config.sediment)
                 correction = _elementwise(lith.correction, thickness)
                 corrected = corrected + da.where(da.isfinite(correction), correction, np.float32(0))
-                cooling_layers["sediment_correction"] = correction
+                observed_layers["sediment_correction"] = correction
                 attrs["sediment_correction"] = {**attributes("sediment_correction"),
                                                 "comment": f"Airy unloading, {lith.name}: {lith.reference}"}
                 facts["sediment"] = {k: getattr(lith, k) for k in ("name", "surface_porosity", "compaction_per_km",
@@ -263,9 +263,10 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
             attrs[f"{kind}_{name}"] = attributes(f"{kind}_{name}")
         if config.depth.isotherm_c is not None:
             t_iso = config.depth.isotherm_c
-            layers[f"isotherm_depth_{name}"] = _elementwise(lambda a, m=cooling_model: m.isotherm_depth(a, t_iso), age)
+            layers[f"isotherm_depth_{name}"] = _elementwise(lambda a, m=cooling_model: m.isotherm_depth(a, t_iso),
+                                                            age)
             attrs[f"isotherm_depth_{name}"] = {**attributes(f"isotherm_depth_{name}"), "isotherm_c": t_iso}
-    layers.update(cooling_layers)
+    layers.update(observed_layers)
     if corrected is not None:
         for name in models:
             layers[f"residual_{name}"] = cooling[f"residual_{name}"].array()
