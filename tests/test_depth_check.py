@@ -31,6 +31,22 @@ def test_residual_recovers_the_swell(demo_build):
     assert abs(far) <= 60, far
 
 
+def test_residual_is_each_model_minus_the_sediment_corrected_depth(demo_build):
+    # the definition (design notes: predicted minus observed depth corrected for sediment, positive where the
+    # sea floor is shallower), recomputed with numpy from the written layers for every model, where sediment
+    # is missing the observed depth alone
+    with xr.open_dataset(demo_build / "veyra-basin.nc") as ds:
+        correction = ds["sediment_correction"].values
+        assert np.nanmax(np.abs(correction)) > 100  # the correction matters here
+        corrected = ds["observed_depth"].values + np.where(np.isfinite(correction), correction, 0)
+        models = [name[len("residual_"):] for name in ds.data_vars if name.startswith("residual_")]
+        assert len(models) >= 3
+        for model in models:
+            expected = (ds[f"depth_{model}"].values - corrected).astype(np.float32)
+            np.testing.assert_allclose(ds[f"residual_{model}"].values, expected, atol=1e-3, equal_nan=True)
+            assert np.isfinite(ds[f"residual_{model}"].values).sum() > 1000
+
+
 def test_depth_stats_and_fit(demo_build):
     rows = list(csv.DictReader(open(demo_build / "veyra-basin_depth_stats.csv")))
     assert {r["model"] for r in rows} == {"gdh1", "ps77", "hsc", "plate"}
