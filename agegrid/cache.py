@@ -76,7 +76,7 @@ class BlockCache:
         self.enabled = enabled
         self.root.mkdir(parents=True, exist_ok=True)
         self.keys: dict[tuple[int, int], str] = {}
-        self.blocks = 0  # the grid's block count, set by the age engine (:func:`agegrid.age.age_layers`)
+        self.blocks = 0  # the grid's block count, set by the age engine (:func:`agegrid.age.age_planes`)
         self.source: Path | None = None
         self.reusable: set[tuple[int, int]] = set()
 

@@ -293,7 +293,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
                 layers["magnetic_residual"] = (observed - layers["magnetic_anomaly_predicted"]).astype(np.float32)
                 attrs["magnetic_residual"] = attributes("magnetic_residual")
     facts["timescale"] = scale.describe()
-    facts["models"] = {name: m.describe() for name, m in _models(config).items()}
+    facts["models"] = {name: m.describe() for name, m in models.items()}
     facts["model_labels"] = model.labels
     return layers, attrs, facts, planes
 
