@@ -36,6 +36,9 @@ def cmd_build(args) -> int:
             log.info("nothing changed since the build of %s: outputs in %s are up to date, nothing written",
                      previous.get("built"), config.output.directory)
             return 0
+    from agegrid.startup import ready_to_build
+
+    ready_to_build()
     from agegrid.pipeline import build
 
     build(config, force=args.force, address=args.scheduler, workers=args.workers, progress=not args.quiet)
@@ -69,6 +72,9 @@ def cmd_validate(args) -> int:
 
 
 def cmd_demo(args) -> int:
+    from agegrid.startup import ready_to_build
+
+    ready_to_build()
     from agegrid.config import load_build_file
     from agegrid.pipeline import build
 
