@@ -1,5 +1,7 @@
 """Incremental, scheduled and distributed rebuilds."""
 import json
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -46,6 +48,20 @@ def test_noop_rerun_writes_nothing(tmp_path, survey, capsys):
     assert main(["build", str(build), "--force", "--quiet"]) == 0
     manifest = json.loads((out / "manifest.json").read_text())
     assert manifest["cache"]["from_cache"] == 0 and manifest["cache"]["recomputed"] == manifest["cache"]["blocks"]
+
+
+def test_noop_rerun_imports_neither_the_compiler_nor_the_grid_libraries(tmp_path, survey):
+    # A scheduled rerun with nothing changed reads the build file (the cooling-model names included) and
+    # the inputs' digests only: numba, scipy, dask and xarray, the bulk of a build's start-up, stay
+    # unimported (Python's sys.modules, in a fresh process).
+    basin, records = survey
+    build = basin_build(tmp_path, basin, records=records, spacing=0.2, chunk=64)
+    assert main(["build", str(build), "--quiet"]) == 0
+    probe = ("import sys; from agegrid.cli import main; rc = main(['build', sys.argv[1], '--quiet']); "
+             "print(rc, *(name in sys.modules for name in ('numba', 'scipy', 'dask', 'xarray')))")
+    result = subprocess.run([sys.executable, "-c", probe, str(build)], capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.split() == ["0", "False", "False", "False", "False"]
 
 
 def test_removing_two_tracks_in_a_corner_rebuilds_few_blocks(tmp_path, survey):
