@@ -192,6 +192,7 @@ class _Pyramid:
             self.shapes.append(tuple(-(-n // 2) for n in self.shapes[-1]))
         self.open: list[dict] = [{} for _ in self.shapes]
         self.spills, self.files, self.offsets, self.counts = [], [], [], []
+        self.ends = [0] * len(self.shapes)  # each spill file's length: tiles are only appended
         for shape in self.shapes:
             tiles = -(-shape[0] // self.tile) * -(-shape[1] // self.tile)
             self.offsets.append(np.full(tiles, -1, dtype=np.int64))
@@ -246,8 +247,8 @@ class _Pyramid:
     def store(self, level: int, ti: int, tj: int, data: bytes) -> None:
         """Append an encoded tile to its level's spill file."""
         k = ti * -(-self.shapes[level][1] // self.tile) + tj
-        self.offsets[level][k] = self.files[level].tell()
-        self.counts[level][k] = len(data)
+        self.offsets[level][k], self.counts[level][k] = self.ends[level], len(data)
+        self.ends[level] += len(data)  # the running length, not a tell() (a system call) per tile
         self.files[level].write(data)
 
     def assemble(self, staged: Path) -> None:
