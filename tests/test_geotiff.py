@@ -5,7 +5,7 @@ import rasterio
 from rasterio.io import MemoryFile
 
 from agegrid.grid import GridSpec
-from agegrid.io import tiff
+from agegrid.io import geotiff, tiff
 from agegrid.io.geotiff import COPIED_TAGS, GDAL_METADATA, GDAL_NODATA, CogWriter, georeferencing_tags
 
 REGION, SPACING = (10.0, 30.0, -5.0, 12.0), 0.03  # 567 x 667 cells: two overview levels, ragged edge tiles
@@ -240,8 +240,11 @@ def test_edge_tiles_are_padded_with_the_fill(tmp_path):
     ny, nx = values["age"].shape
     across = -(-nx // tile)
     corner = len(offsets) - 1  # the bottom-right tile: ragged both ways
-    decoded = np.frombuffer(zlib.decompress(data[offsets[corner]:offsets[corner] + counts[corner]]), "<f4")
-    decoded = decoded.reshape(tile, tile)
+    stream = data[offsets[corner]:offsets[corner] + counts[corner]]
+    # a zlib stream (RFC 1950) declaring the 1 KiB window it was made with: CINFO = log2(window) - 8 = 2
+    assert stream[0] & 0x0F == 8 and stream[0] >> 4 == geotiff.DEFLATE_WINDOW_BITS - 8 == 2
+    assert int.from_bytes(stream[:2], "big") % 31 == 0
+    decoded = np.frombuffer(zlib.decompress(stream), "<f4").reshape(tile, tile)
     h, w = ny - (corner // across) * tile, nx - (corner % across) * tile
     assert 0 < h < tile and 0 < w < tile
     assert np.isnan(decoded[h:]).all() and np.isnan(decoded[:h, w:]).all()
