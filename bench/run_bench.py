@@ -47,6 +47,39 @@ from agegrid.synthetic import SyntheticBasin  # noqa: E402
 from tests.helpers import basin_build, write_picks  # noqa: E402
 
 
+#: agegrid's performance targets, checked against each run's own measurements (:func:`targets`): the age
+#: stage and the whole build on about 3 million cells as multiples of griddata's time, the time of 16x the
+#: cells as a multiple of the smaller grid's, and a build's peak memory at ~46 million cells or more.
+AGE_STAGE_MAX, WHOLE_BUILD_MAX, SCALING_MAX, PEAK_MB_MAX = 2.0, 8.0, 20.0, 1500.0
+
+
+def targets(results: list[dict]) -> list[dict]:
+    """Each target this run measured: what, the measured values, the limit and whether every value is within it."""
+    out = []
+    for row in results:
+        if 1e6 <= row["cells"] <= 1e7:
+            steady, where = row["steady_build"], f"{row['cells']:,} cells"
+            out.append({"target": f"age stage at {where}, x griddata", "limit": AGE_STAGE_MAX,
+                        "values": {"alternated": row["age_over_griddata"]}})
+            out.append({"target": f"whole build at {where}, x griddata", "limit": WHOLE_BUILD_MAX,
+                        "values": {"warm, alternated": steady["over_griddata"],
+                                   "warm, griddata alone": steady["over_griddata_alone"],
+                                   "fresh process, layers and files": row["layers_and_files_over_griddata"]}})
+        if row["cells"] >= 4e7:
+            out.append({"target": f"peak memory at {row['cells']:,} cells, MB", "limit": PEAK_MB_MAX,
+                        "values": {"build process": row["build"]["peak_memory_mb"]}})
+    for small, big in zip(results, results[1:]):
+        if round(big["cells"] / small["cells"]) == 16:
+            out.append({"target": f"16x the cells ({small['cells']:,} -> {big['cells']:,}), x the time",
+                        "limit": SCALING_MAX, "values": {
+                            "command": round(big["build"]["wall_s"] / small["build"]["wall_s"], 2),
+                            "layers and files": round(big["build"]["layers_and_files_s"]
+                                                      / small["build"]["layers_and_files_s"], 2)}})
+    for target in out:
+        target["met"] = all(v <= target["limit"] for v in target["values"].values())
+    return out
+
+
 def score(error: np.ndarray, mask: np.ndarray | None = None) -> dict:
     e = error if mask is None else np.where(mask, error, np.nan)
     e = np.abs(e[np.isfinite(e)])
@@ -236,10 +269,16 @@ def main(argv=None) -> int:
                   f"{big['build']['wall_s'] / small['build']['wall_s']:.1f}x the build time "
                   f"({big['build']['layers_and_files_s'] / small['build']['layers_and_files_s']:.1f}x for the layers "
                   f"and files)")
+    checked = targets(results)
+    for target in checked:
+        values = ", ".join(f"{k} {v}" for k, v in target["values"].items())
+        print(f"target: {target['target']}: {values} (at most {target['limit']}): "
+              f"{'met' if target['met'] else 'NOT met'}")
     out_dir = ROOT / "bench" / "results"
     out_dir.mkdir(parents=True, exist_ok=True)
     stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
-    (out_dir / f"bench-{stamp}.json").write_text(json.dumps({"when": stamp, "results": results}, indent=2))
+    (out_dir / f"bench-{stamp}.json").write_text(json.dumps({"when": stamp, "results": results, "targets": checked},
+                                                            indent=2))
     print(f"results: bench/results/bench-{stamp}.json")
     return 0
 
