@@ -7,7 +7,8 @@ alternately `repeats` times each, medians; accuracy of both against the true age
 within 0.5 degrees of a fracture zone); then whole builds (`agegrid build`, three cooling models, bathymetry, NetCDF and a COG per layer)
 in a fresh process each, with per-stage timings from the manifest and the process's peak memory: the
 wall time of the command (module imports included) and the layers-and-files time (the manifest's total:
-inputs read to every layer written as NetCDF and COG, with the tables; the report is timed apart); and
+inputs read to every layer written as NetCDF and COG, with the tables; the report is timed apart), each
+build followed by griddata in a fresh process, timed after its imports (the fresh-process baseline); and
 the same builds run in this process after a warm-up, alternately with griddata, as the age stage is
 measured (the like-for-like ratio: no imports, numba start-up or first allocations on either side).
 
@@ -64,7 +65,8 @@ def targets(results: list[dict]) -> list[dict]:
             out.append({"target": f"whole build at {where}, x griddata", "limit": WHOLE_BUILD_MAX,
                         "values": {"warm, alternated": steady["over_griddata"],
                                    "warm, griddata alone": steady["over_griddata_alone"],
-                                   "fresh process, layers and files": row["layers_and_files_over_griddata"]}})
+                                   "fresh processes, layers and files": row["build"][
+                                       "layers_and_files_over_fresh_griddata"]}})
         if row["cells"] >= 4e7:
             out.append({"target": f"peak memory at {row['cells']:,} cells, MB", "limit": PEAK_MB_MAX,
                         "values": {"build process": row["build"]["peak_memory_mb"]}})
@@ -134,14 +136,30 @@ def write_bathymetry(path: Path, basin: SyntheticBasin, spec: GridSpec) -> None:
                coords={"lat": spec.y, "lon": spec.x}).to_netcdf(path)
 
 
-def whole_build(folder: Path, runs: int) -> dict:
-    """`agegrid build --force` in fresh processes; median wall time, stage timings, peak memory."""
+#: griddata in a fresh process, timed after its imports (as a build's layers-and-files time is): its inputs
+#: from the .npz named first, the seconds printed.
+FRESH_GRIDDATA = ("import sys, time; import numpy as np; from scipy.interpolate import griddata; "
+                  "d = np.load(sys.argv[1]); t = time.perf_counter(); lon, lat = np.meshgrid(d['x'], d['y']); "
+                  "griddata(d['points'], d['values'], (lon, lat), method='linear'); print(time.perf_counter() - t)")
+
+
+def griddata_inputs(path: Path, spec, basin, records) -> Path:
+    """Save :func:`generic`'s points, values and grid axes for :data:`FRESH_GRIDDATA`."""
+    ridge = np.concatenate(basin.ridges())
+    np.savez(path, points=np.concatenate([np.array([[r["lon"], r["lat"]] for r in records]), ridge]),
+             values=np.concatenate([[r["age_ma"] for r in records], np.zeros(len(ridge))]), x=spec.x, y=spec.y)
+    return path
+
+
+def whole_build(folder: Path, runs: int, griddata_npz: Path) -> dict:
+    """`agegrid build --force` in fresh processes, each followed by griddata in a fresh process (the
+    like-for-like baseline of the layers-and-files time); median wall time, stage timings, peak memory."""
     # peak memory from the kernel's high-water mark (VmHWM), which starts afresh at exec; ru_maxrss would
     # carry this benchmark's own size over into the child
     code = ("import sys, time; from agegrid.cli import main; from agegrid.manifest import peak_memory_mb; "
             "t = time.perf_counter(); rc = main(['build', sys.argv[1], '--force', '--quiet']); "
             "print(time.perf_counter() - t, peak_memory_mb()['process'], rc)")
-    walls, peaks, stages = [], [], []
+    walls, peaks, stages, grids = [], [], [], []
     for _ in range(runs):
         out = subprocess.run([sys.executable, "-c", code, str(folder / "build.toml")], capture_output=True,
                              text=True, check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
@@ -150,6 +168,8 @@ def whole_build(folder: Path, runs: int) -> dict:
         walls.append(float(wall))
         peaks.append(float(peak))
         stages.append(json.loads((folder / "out" / "manifest.json").read_text())["timings_s"])
+        grids.append(float(subprocess.run([sys.executable, "-c", FRESH_GRIDDATA, str(griddata_npz)],
+                                          capture_output=True, text=True, check=True).stdout))
     median_stages = {k: round(statistics.median(s[k] for s in stages), 3) for k in stages[0]}
     noop = []
     for _ in range(runs):  # reruns with nothing changed, from the command line
@@ -158,8 +178,11 @@ def whole_build(folder: Path, runs: int) -> dict:
                        env={**os.environ, "PYTHONPATH": str(ROOT)})
         noop.append(time.perf_counter() - start)
     wall = statistics.median(walls)
+    fresh_griddata = statistics.median(grids)
     return {"wall_s": round(wall, 3), "walls_s": [round(w, 3) for w in walls],
             "layers_and_files_s": median_stages["total"],
+            "fresh_griddata_s": round(fresh_griddata, 3), "fresh_griddata_runs_s": [round(t, 3) for t in grids],
+            "layers_and_files_over_fresh_griddata": round(median_stages["total"] / fresh_griddata, 2),
             "peak_memory_mb": round(max(peaks), 1), "stages_s": median_stages,
             "noop_rerun_s": round(statistics.median(noop), 3), "noop_over_build": round(statistics.median(noop) / wall, 3)}
 
@@ -232,7 +255,8 @@ def main(argv=None) -> int:
             text = (folder / "build.toml").read_text().replace('[grid]', 'bathymetry = "bathymetry.nc"\n[grid]')
             (folder / "build.toml").write_text(text)
             write_bathymetry(folder / "bathymetry.nc", basin, spec)
-            build = whole_build(folder, args.builds)
+            build = whole_build(folder, args.builds, griddata_inputs(tmp / f"griddata-{spacing}.npz", spec, basin,
+                                                                     records))
             steady = steady_builds(folder, lambda: generic(spec, basin, records), args.repeats)
             row = {
                 "spacing_deg": spacing, "cells": spec.size, "picks": len(records),
@@ -257,7 +281,8 @@ def main(argv=None) -> int:
                   f"near FZ {row['accuracy_griddata']['near_fz']}")
             print(f"{'':>16}layers and files (inputs to every layer in NetCDF and COG, tables; no report, no "
                   f"start-up) {build['layers_and_files_s']:.2f} s (x{row['layers_and_files_over_griddata']:.1f} "
-                  f"griddata)")
+                  f"griddata; x{build['layers_and_files_over_fresh_griddata']:.1f} griddata in a fresh process after "
+                  f"its imports, {build['fresh_griddata_s']:.3f} s)")
             print(f"{'':>16}the same in one process, warm, alternated with griddata: "
                   f"{steady['layers_and_files_s']:.2f} s against {steady['griddata_s']:.3f} s "
                   f"(x{steady['over_griddata']:.1f} griddata; griddata alone {steady['griddata_alone_s']:.3f} s, "
