@@ -296,7 +296,7 @@ def main(argv=None) -> int:
                   f"and files)")
     checked = targets(results)
     for target in checked:
-        values = ", ".join(f"{k} {v}" for k, v in target["values"].items())
+        values = "; ".join(f"{k} {v}" for k, v in target["values"].items())
         print(f"target: {target['target']}: {values} (at most {target['limit']}): "
               f"{'met' if target['met'] else 'NOT met'}")
     out_dir = ROOT / "bench" / "results"
