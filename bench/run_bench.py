@@ -104,13 +104,18 @@ def age_stage(spec, basin, picks, scale):
         return age.compute()
 
 
+def griddata_points(basin, records) -> tuple[np.ndarray, np.ndarray]:
+    """griddata's control: the picks' positions and ages, and the ridge points at age zero."""
+    ridge = np.concatenate(basin.ridges())
+    points = np.concatenate([np.array([[r["lon"], r["lat"]] for r in records]), ridge])
+    return points, np.concatenate([[r["age_ma"] for r in records], np.zeros(len(ridge))])
+
+
 def generic(spec, basin, records):
     """scipy's linear griddata from the picks and ridge points (what users do today)."""
     from scipy.interpolate import griddata
 
-    ridge = np.concatenate(basin.ridges())
-    points = np.concatenate([np.array([[r["lon"], r["lat"]] for r in records]), ridge])
-    values = np.concatenate([[r["age_ma"] for r in records], np.zeros(len(ridge))])
+    points, values = griddata_points(basin, records)
     lon, lat = np.meshgrid(spec.x, spec.y)
     return griddata(points, values, (lon, lat), method="linear")
 
@@ -145,9 +150,8 @@ FRESH_GRIDDATA = ("import sys, time; import numpy as np; from scipy.interpolate 
 
 def griddata_inputs(path: Path, spec, basin, records) -> Path:
     """Save :func:`generic`'s points, values and grid axes for :data:`FRESH_GRIDDATA`."""
-    ridge = np.concatenate(basin.ridges())
-    np.savez(path, points=np.concatenate([np.array([[r["lon"], r["lat"]] for r in records]), ridge]),
-             values=np.concatenate([[r["age_ma"] for r in records], np.zeros(len(ridge))]), x=spec.x, y=spec.y)
+    points, values = griddata_points(basin, records)
+    np.savez(path, points=points, values=values, x=spec.x, y=spec.y)
     return path
 
 
