@@ -22,6 +22,8 @@ from agegrid import sphere
 
 #: Kilometres in a degree of latitude on the sphere of :data:`agegrid.sphere.EARTH_RADIUS_KM`.
 KM_PER_DEGREE = sphere.EARTH_RADIUS_KM * np.pi / 180.0
+#: The first stretch of a barrier's continuation, in cells (see :func:`_continuation`).
+FIRST_CONTINUATION_CELLS = 512
 
 
 @dataclass
@@ -358,14 +360,34 @@ def _barrier_cells(spec, barriers, extend) -> tuple[np.ndarray, list[np.ndarray]
             continue
         stop = marked[owner != number]
         for ends in (xyz, xyz[::-1]):
-            ext = _extension(ends, np.pi / 2, step)
-            if not len(ext):
-                continue
-            lon, lat = sphere.to_lonlat(np.concatenate([ends[-1:], ext]))
-            ext_flat, used = _path_cells(spec.shape, _index_path(spec, lon, lat), stop_cells=stop, skip=1)
-            all_cells.append(ext_flat)
-            paths.append(used)
+            continued = _continuation(spec, ends, step, stop)
+            if continued is not None:
+                all_cells.append(continued[0])
+                paths.append(continued[1])
     return _unique(np.concatenate(all_cells)), paths
+
+
+def _continuation(spec, ends: np.ndarray, step: float, stop: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Cells of a line's continuation beyond its last vertex along its end great circle, for up to a quarter
+    circle, ended by the first ``stop`` cell or the grid's edge; and the path used (None for a degenerate end).
+
+    The continuation is drawn in stretches of doubling length from :data:`FIRST_CONTINUATION_CELLS`, until a
+    stretch is cut short: the points of a shorter stretch are the first points of a longer one, so the cells
+    are those of the whole quarter circle, at a fraction of the cost (most continuations leave the grid within
+    a few hundred cells).
+    """
+    length = FIRST_CONTINUATION_CELLS * 2 * step
+    while True:
+        length = min(length, np.pi / 2)
+        ext = _extension(ends, length, step)
+        if not len(ext):
+            return None
+        lon, lat = sphere.to_lonlat(np.concatenate([ends[-1:], ext]))
+        path = _index_path(spec, lon, lat)
+        cells, used = _path_cells(spec.shape, path, stop_cells=stop, skip=1)
+        if len(used) < len(path) or length >= np.pi / 2:
+            return cells, used
+        length *= 2
 
 
 def _near_cells(shape, barrier_cells: np.ndarray) -> np.ndarray:

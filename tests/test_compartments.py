@@ -58,3 +58,23 @@ def test_memory_grows_with_barriers_not_cells():
     held = sum(len(data) for data, _ in comps._blocks.values()) + comps._barrier_cells.nbytes \
         + comps._near_cells.nbytes + comps._near_labels.nbytes
     assert held < 0.05 * spec.size * 4, (held, spec.size)  # a global int32 raster would be spec.size * 4
+
+
+@pytest.mark.parametrize("spec", [
+    GridSpec((-20.0, 40.0, -35.0, 30.0), 0.02, chunk=512),  # long continuations: 3,000+ cells to an edge
+    GridSpec((-2.0e6, 2.0e6, -2.0e6, 2.0e6), 5.0e3, crs="EPSG:3031", chunk=256),  # polar stereographic
+])
+def test_continuations_drawn_in_stretches_equal_the_whole_quarter_circle(spec, monkeypatch):
+    from agegrid import compartments
+
+    basin = SyntheticBasin()
+    lines = basin.fracture_zones() + [np.array([[2.0, 5.0], [8.0, 5.2]]), np.array([[-5.0, -20.0], [-4.0, 10.0]]),
+                                      np.array([[30.0, -80.0], [150.0, -75.0]])]
+    stretched = compartments._barrier_cells(spec, lines, True)
+    # reference: each continuation drawn in one piece over the whole quarter circle, as before stretches
+    monkeypatch.setattr(compartments, "FIRST_CONTINUATION_CELLS", 10**9)
+    whole = compartments._barrier_cells(spec, lines, True)
+    assert np.array_equal(stretched[0], whole[0])
+    assert len(stretched[1]) == len(whole[1]) > len(lines)
+    assert all(np.array_equal(a, b) for a, b in zip(stretched[1], whole[1]))
+    assert len(stretched[0]) > len(compartments._barrier_cells(spec, lines, False)[0])  # continuations drawn
