@@ -136,18 +136,19 @@ class Compartments:
         _, seg = tree.query(q)
         a, d = start[seg], direction[seg]
         side = np.sign(d[:, 0] * (q[:, 1] - a[:, 1]) - d[:, 1] * (q[:, 0] - a[:, 0]))
-        r0, c0 = np.rint(fy).astype(int), np.rint(fx).astype(int)
+        r0, c0 = np.rint(fy).astype(np.int64), np.rint(fx).astype(np.int64)
         result = np.zeros(len(fx), dtype=np.int32)
-        todo = np.ones(len(fx), bool)
+        todo = np.arange(len(fx))  # the points still without a label: each offset looks at these only
         for dr, dc in SIDE_OFFSETS:
-            rr, cc = np.clip(r0 + dr, 0, ny - 1), np.clip(c0 + dc, 0, nx - 1)
-            hit, where = _lookup(self._near_cells, rr.astype(np.int64) * nx + cc)
+            rr, cc = np.clip(r0[todo] + dr, 0, ny - 1), np.clip(c0[todo] + dc, 0, nx - 1)
+            hit, where = _lookup(self._near_cells, rr * nx + cc)
             cand = np.where(hit, self._near_labels[where], 0)
-            cside = np.sign(d[:, 0] * (rr - a[:, 1]) - d[:, 1] * (cc - a[:, 0]))
-            ok = todo & (cand > 0) & ((cside == side) | (side == 0))
-            result[ok] = cand[ok]
-            todo &= ~ok
-            if not todo.any():
+            dt, at = d[todo], a[todo]
+            cside = np.sign(dt[:, 0] * (rr - at[:, 1]) - dt[:, 1] * (cc - at[:, 0]))
+            ok = (cand > 0) & ((cside == side[todo]) | (side[todo] == 0))
+            result[todo[ok]] = cand[ok]
+            todo = todo[~ok]
+            if not len(todo):
                 break
         return result
 
