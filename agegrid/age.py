@@ -293,8 +293,8 @@ def _unambiguous(offset: np.ndarray, sigma_km: np.ndarray, ambiguous: np.ndarray
         return np.ones(len(offset), bool)
     if not firm.any():
         return ~ambiguous
-    reference = np.median(offset[firm])
-    tolerance = max(3 * np.median(sigma_km) / sphere.EARTH_RADIUS_KM, 0.1 * abs(reference))
+    reference = _median(offset[firm])
+    tolerance = max(3 * _median(sigma_km) / sphere.EARTH_RADIUS_KM, 0.1 * abs(reference))
     return ~ambiguous | (np.abs(offset - reference) <= tolerance)
 
 
@@ -309,7 +309,7 @@ def _steady_rate(offset: np.ndarray, sigma_km: np.ndarray, keep: np.ndarray) -> 
     """
     if not keep.any():
         return keep
-    typical = np.median(offset[keep])
+    typical = _median(offset[keep])
     if typical <= 0:
         return keep
     slack = 3 * sigma_km / sphere.EARTH_RADIUS_KM
