@@ -169,6 +169,8 @@ class AgeModel:
     ages: np.ndarray = field(default_factory=lambda: np.zeros(1))
     dropped: list[dict] = field(default_factory=list)
     outliers: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    #: The compartment of each control point the model was fitted to (0: none).
+    control_compartments: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int32))
 
 
 # --- building the traces ---------------------------------------------------------------------------
@@ -714,7 +716,7 @@ def build_age_model(spec, compartments, control, settings: Settings) -> AgeModel
                  item["compartment"], item["age_ma"], item["flank"], item["points"], item["implied_half_rate_mm_yr"],
                  item["reason"])
     return AgeModel(models, settings, list(control.boundaries.labels), np.asarray(control.boundaries.ages), dropped,
-                    np.asarray(sorted(outliers), dtype=np.int64))
+                    np.asarray(sorted(outliers), dtype=np.int64), where)
 
 
 # --- the kernel --------------------------------------------------------------------------------------

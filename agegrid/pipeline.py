@@ -201,7 +201,7 @@ def compute_layers(config, inputs: dict, stages: Stages, opened: contextlib.Exit
     with stages("age model"):
         model = build_age_model(spec, comps, control, _engine_settings(config))
     with stages("pick QA"):
-        qa = check_picks(control, spec, comps, config.picks, model)
+        qa = check_picks(control, spec, config.picks, model)
         facts["qa"] = qa.summary()
         if qa.findings and config.picks.suspect == "fail":
             first = qa.findings[0]

@@ -56,14 +56,14 @@ def ridge_offsets(model, xyz: np.ndarray, label: np.ndarray) -> tuple[np.ndarray
     return dist, side
 
 
-def check_picks(control, spec, compartments, settings, model) -> QAReport:
-    """Run every pick check; ``settings`` is the ``[picks]`` section, ``model`` the fitted age model."""
+def check_picks(control, spec, settings, model) -> QAReport:
+    """Run every pick check; ``settings`` is the ``[picks]`` section, ``model`` the age model fitted to ``control``."""
     table = control.picks
     report = QAReport(checked=len(table))
     is_pick = control.kind == 2
     idx = control.source_index[is_pick]
     lon, lat, age = control.lon[is_pick], control.lat[is_pick], control.age[is_pick]
-    label = compartments.assign(spec, lon, lat)
+    label = model.control_compartments[is_pick]  # each pick's compartment, as the model placed it
     _, _, on_grid = spec.index(lon, lat)
     for i in np.flatnonzero(~on_grid):
         report.add(table, idx[i], "outside_grid", "lies outside the grid region")
