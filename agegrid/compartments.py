@@ -116,11 +116,14 @@ class Compartments:
         k = int(np.ceil(km / cell_km))
         ny, nx = spec.shape
         near = np.zeros(np.shape(lon), bool)
-        for dr in range(-k, k + 1):
-            for dc in range(-k, k + 1):
-                r, c = row + dr, col + dc
-                ok = inside & (r >= 0) & (r < ny) & (c >= 0) & (c < nx)
-                near[ok] |= _lookup(self._barrier_cells, r[ok] * nx + c[ok])[0]
+        row, col = row[inside].astype(np.int64)[:, None], col[inside].astype(np.int64)[:, None]
+        columns = np.arange(-k, k + 1)
+        found = np.zeros(len(row), bool)
+        for dr in range(-k, k + 1):  # a row of offsets at a time: memory grows with the points times 2k + 1
+            r, c = row + dr, col + columns
+            ok = (r >= 0) & (r < ny) & (c >= 0) & (c < nx)
+            found |= (_lookup(self._barrier_cells, np.where(ok, r * nx + c, -1))[0] & ok).any(axis=1)
+        near[inside] = found
         return near
 
     def _side_labels(self, fx: np.ndarray, fy: np.ndarray) -> np.ndarray:

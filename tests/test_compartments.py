@@ -78,3 +78,21 @@ def test_continuations_drawn_in_stretches_equal_the_whole_quarter_circle(spec, m
     assert len(stretched[1]) == len(whole[1]) > len(lines)
     assert all(np.array_equal(a, b) for a, b in zip(stretched[1], whole[1]))
     assert len(stretched[0]) > len(compartments._barrier_cells(spec, lines, False)[0])  # continuations drawn
+
+
+@pytest.mark.parametrize("km", [0.0, 3.0, 25.0])
+def test_near_barrier_is_a_chebyshev_reach_of_barrier_cells(km):
+    basin = SyntheticBasin()
+    spec = GridSpec(basin.region(0.5), 0.05, chunk=128)
+    comps = build_compartments(spec, basin.fracture_zones(), basin.domain_polygon())
+    rng = np.random.default_rng(3)
+    west, east, south, north = spec.region
+    lon, lat = rng.uniform(west - 2, east + 2, 3000), rng.uniform(south - 2, north + 2, 3000)
+    near = comps.near_barrier(spec, lon, lat, km)
+    # reference: brute force over every barrier cell, within k cells in rows and columns (the docstring's rule)
+    row, col, inside = spec.index(lon, lat)
+    k = int(np.ceil(km / (spec.spacing * 111.19)))  # km per degree on the 6371 km sphere, to the 2nd decimal
+    br, bc = np.divmod(comps._barrier_cells, spec.shape[1])
+    reach = np.maximum(np.abs(row[:, None] - br[None, :]), np.abs(col[:, None] - bc[None, :])) <= k
+    assert np.array_equal(near, inside & reach.any(axis=1))
+    assert near.sum() > (10 if km else 0)
