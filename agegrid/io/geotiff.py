@@ -1,12 +1,13 @@
 """Cloud-Optimized GeoTIFFs, one per output layer, written tile by tile as the layers stream past.
 
-Every block a layer hands over is cut into square tiles (512 or 256 cells a side, see :func:`tile_side`).
-A finished tile is encoded on a worker thread (the TIFF predictor if asked, then the codec, both releasing the GIL) and appended to its level's
-spill file beside the target, and its 2 x 2 reduction fills a quarter of a tile of the next overview
-level: the mean of the valid cells for real values, the top-left cell for codes and counts. So the
-overviews are made in the same pass, and memory holds only unfinished tiles. When the grid is done,
-each COG is assembled from its spill files (:func:`agegrid.io.tiff.write_pyramid`) with the CRS,
-transform, nodata and band metadata tags GDAL writes for such a layer.
+Every block a layer hands over is cut into square tiles (512 or 256 cells a side, see :func:`tile_side`). A
+finished tile is encoded on a worker thread (the TIFF predictor if asked, then the codec, both releasing the
+GIL) and appended to a spill file beside the target (the layer's own for the full resolution, one for every
+layer's overviews), and its 2 x 2 reduction fills a quarter of a tile of the next overview level: the mean of
+the valid cells for real values, the top-left cell for codes and counts. So the overviews are made in the same
+pass, and memory holds only unfinished tiles. When the grid is done, each COG is assembled from its spill
+files (:func:`agegrid.io.tiff.write_pyramid`) with the CRS, transform, nodata and band metadata tags GDAL
+writes for such a layer.
 """
 from __future__ import annotations
 
@@ -94,13 +95,16 @@ class CogWriter:
         """Whether the full-resolution tiles are plain zlib streams of the values, padded with the fill to
         ``tile`` x ``tile``: byte for byte what HDF5's deflate filter stores for a chunk of that shape."""
         self.layers: dict[str, _Pyramid] = {}
+        self.overviews: _Spill | None = None
         try:
             tags = georeferencing_tags(spec, {name: (np.dtype(dtypes[name]), fills[name], attrs[name])
                                               for name in targets})
+            if targets:  # every layer's overview tiles in one file: a few tiles a layer
+                self.overviews = _Spill(next(iter(targets.values())), ".overviews.tiles")
             for name, target in targets.items():
                 self.layers[name] = _Pyramid(spec, name, target, np.dtype(dtypes[name]), fills[name], tags[name],
                                              averaged=not _is_code(attrs[name]), codec=self.codec,
-                                             predictor=predictor, tile=self.tile)
+                                             predictor=predictor, tile=self.tile, overviews=self.overviews)
         except BaseException:
             self.close()
             raise
@@ -145,6 +149,8 @@ class CogWriter:
         others are assembled).
         """
         self.drain()
+        if self.overviews is not None:
+            self.overviews.file.flush()
         staged = {layer.target: staging_path(layer.target) for layer in self.layers.values()}
 
         def assemble(layer: _Pyramid) -> None:
@@ -171,6 +177,8 @@ class CogWriter:
         self.pool.shutdown(wait=True)
         for layer in self.layers.values():
             layer.discard()
+        if self.overviews is not None:
+            self.overviews.discard()
 
 
 def _is_code(attrs: dict) -> bool:
@@ -178,11 +186,36 @@ def _is_code(attrs: dict) -> bool:
     return str(attrs.get("units", "")) == "1" or "flag_values" in attrs
 
 
+class _Spill:
+    """An append-only file of encoded tiles beside the targets, its length kept as it grows (not a tell(), a
+    system call, per tile)."""
+
+    def __init__(self, target: Path, suffix: str):
+        self.path, self.file = staging_file(target, suffix)
+        self.end = 0
+
+    def append(self, data: bytes) -> int:
+        """Write ``data`` at the end; returns where it starts."""
+        start = self.end
+        self.file.write(data)
+        self.end += len(data)
+        return start
+
+    def discard(self) -> None:
+        """Close and remove the file."""
+        self.file.close()
+        self.path.unlink(missing_ok=True)
+
+
 class _Pyramid:
-    """One layer's levels: unfinished tiles, a spill file of encoded tiles per level, and the TIFF tags."""
+    """One layer's levels: unfinished tiles, where its encoded tiles are, and the TIFF tags.
+
+    The full resolution's tiles have a spill file of their own, which becomes the COG (see
+    :func:`agegrid.io.tiff.write_pyramid`); the overviews' go to ``overviews``, shared by the layers.
+    """
 
     def __init__(self, spec, name: str, target: Path, dtype: np.dtype, fill, georeferencing: dict[int, tiff.Tag],
-                 averaged: bool, codec: Codec, predictor: bool, tile: int):
+                 averaged: bool, codec: Codec, predictor: bool, tile: int, overviews: _Spill):
         self.name, self.target, self.dtype, self.fill = name, target, dtype.newbyteorder("<"), fill
         self.tile = tile
         self.averaged, self.codec, self.predictor = averaged, codec, predictor
@@ -191,15 +224,12 @@ class _Pyramid:
         while max(self.shapes[-1]) > self.tile:  # halve until the overview fits one tile
             self.shapes.append(tuple(-(-n // 2) for n in self.shapes[-1]))
         self.open: list[dict] = [{} for _ in self.shapes]
-        self.spills, self.files, self.offsets, self.counts = [], [], [], []
-        self.ends = [0] * len(self.shapes)  # each spill file's length: tiles are only appended
+        self.offsets, self.counts = [], []
         for shape in self.shapes:
             tiles = -(-shape[0] // self.tile) * -(-shape[1] // self.tile)
             self.offsets.append(np.full(tiles, -1, dtype=np.int64))
             self.counts.append(np.zeros(tiles, dtype=np.int64))
-            path, file = staging_file(target, f".level{len(self.spills)}.tiles")
-            self.spills.append(path)
-            self.files.append(file)
+        self.spills = [_Spill(target, ".level0.tiles")] + [overviews] * (len(self.shapes) - 1)
 
     def tile_extent(self, level: int, ti: int, tj: int) -> tuple[int, int]:
         """Rows and columns of tile (ti, tj) of ``level`` inside the image."""
@@ -247,17 +277,15 @@ class _Pyramid:
     def store(self, level: int, ti: int, tj: int, data: bytes) -> None:
         """Append an encoded tile to its level's spill file."""
         k = ti * -(-self.shapes[level][1] // self.tile) + tj
-        self.offsets[level][k], self.counts[level][k] = self.ends[level], len(data)
-        self.ends[level] += len(data)  # the running length, not a tell() (a system call) per tile
-        self.files[level].write(data)
+        self.offsets[level][k], self.counts[level][k] = self.spills[level].append(data), len(data)
 
     def assemble(self, staged: Path) -> None:
         """Write the COG to ``staged`` from the spill files."""
         for level, offsets in enumerate(self.offsets):
             if (offsets < 0).any():
                 raise RuntimeError(f"{self.target.name}: level {level} has tiles never written")
-            self.files[level].flush()
-        tiff.write_pyramid(staged, [tiff.Level(self._tags(level), self.spills[level], self.offsets[level],
+        self.spills[0].file.flush()  # the overviews' file is flushed once, by the writer
+        tiff.write_pyramid(staged, [tiff.Level(self._tags(level), self.spills[level].path, self.offsets[level],
                                                self.counts[level]) for level in range(len(self.shapes))])
 
     def _tags(self, level: int) -> dict[int, tiff.Tag]:
@@ -279,10 +307,8 @@ class _Pyramid:
         return tags
 
     def discard(self) -> None:
-        """Close and remove the spill files."""
-        for file, path in zip(self.files, self.spills):
-            file.close()
-            path.unlink(missing_ok=True)
+        """Close and remove the full resolution's spill file (the writer removes the overviews')."""
+        self.spills[0].discard()
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
