@@ -104,3 +104,31 @@ def test_build_command_readies_the_process_before_the_build_starts(demo_copy):
     result = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr
     assert result.stdout.split() == ["False", "True", "True", "True", "0"]
+
+
+def test_a_build_after_start_up_imports_nothing_outside_the_standard_library(tmp_path):
+    # The start-up imports every library a build uses, so that the build's clock, like the bench's griddata's,
+    # starts after its imports: a whole build (bathymetry, NetCDF and COGs, no report) in a fresh process then
+    # imports nothing outside Python's standard library (sys.stdlib_module_names).
+    import numpy as np
+    import xarray as xr
+
+    from agegrid.grid import GridSpec
+    from agegrid.synthetic import SyntheticBasin
+    from tests.helpers import basin_build
+
+    basin = SyntheticBasin()
+    build = basin_build(tmp_path, basin, spacing=0.2, chunk=64, formats=("netcdf", "geotiff"), extra="report = false")
+    spec = GridSpec(tuple(basin.region(0.5)), 0.2, chunk=64)
+    depth = np.linspace(2500, 5500, spec.size, dtype=np.float32).reshape(spec.shape)
+    xr.Dataset({"depth": (("lat", "lon"), depth, {"units": "m", "positive": "down"})},
+               coords={"lat": spec.y, "lon": spec.x}).to_netcdf(build.parent / "bathymetry.nc")
+    build.write_text(build.read_text().replace("[grid]", 'bathymetry = "bathymetry.nc"\n[grid]'))
+    probe = ("import sys; from agegrid.startup import ready_to_build; ready_to_build(); "
+             "from agegrid.config import load_build_file; from agegrid.pipeline import build; "
+             "before = set(sys.modules); "
+             f"build(load_build_file({str(build)!r}), force=True, progress=False); "
+             "print(sorted({m.split('.')[0] for m in set(sys.modules) - before} - set(sys.stdlib_module_names)))")
+    result = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "[]"
