@@ -23,6 +23,7 @@ from agegrid import __version__, thermal, timescale
 from agegrid.age import LAYERS, Settings, age_planes, build_age_model
 from agegrid.allocator import keep_freed_memory
 from agegrid.bathymetry import depth_sign
+from agegrid.blas import one_blas_thread
 from agegrid.cache import KEPT_NETCDF, BlockCache, fingerprint, up_to_date
 from agegrid.compartments import build_compartments, implied_fracture_zones
 from agegrid.control import build_control
@@ -403,7 +404,8 @@ def build(config, force: bool = False, address: str | None = None, workers: int 
     out_dir.mkdir(parents=True, exist_ok=True)
     limit_chunk_cache()
     keep_freed_memory()
-    with BuildLock(out_dir), contextlib.ExitStack() as opened:  # opened: input grids read block by block
+    # opened: the input grids read block by block
+    with BuildLock(out_dir), one_blas_thread(), contextlib.ExitStack() as opened:
         removed = atomic.clean_stale(out_dir)
         if removed:
             log.info("removed %d temporary file(s) left by an interrupted build", len(removed))
