@@ -1,16 +1,16 @@
 """Benchmarks: the age stage and whole builds against scipy's linear griddata, measured in the same run.
 
-For each grid size: a synthetic basin (agegrid.synthetic, exactly known ages), 60 survey tracks of picks;
-the age stage (control, compartments, trace model, kernel) timed in process and
-scipy.interpolate.griddata (linear) from the same picks and ridge points onto the same cells, run
-alternately `repeats` times each, medians; accuracy of both against the true ages (all cells and cells
-within 0.5 degrees of a fracture zone); then whole builds (`agegrid build`, three cooling models, bathymetry, NetCDF and a COG per layer)
-in a fresh process each, with per-stage timings from the manifest and the process's peak memory: the
-wall time of the command (module imports included) and the layers-and-files time (the manifest's total:
-inputs read to every layer written as NetCDF and COG, with the tables; the report is timed apart), each
-build followed by griddata in a fresh process, timed after its imports (the fresh-process baseline); and
-the same builds run in this process after a warm-up, alternately with griddata, as the age stage is
-measured (the like-for-like ratio: no imports, numba start-up or first allocations on either side).
+For each grid size: a synthetic basin (agegrid.synthetic, exactly known ages), 60 survey tracks of picks; the
+age stage (control, compartments, trace model, kernel) timed in process and scipy.interpolate.griddata
+(linear) from the same picks and ridge points onto the same cells, run alternately `repeats` times each,
+medians; accuracy of both against the true ages (all cells and cells within 0.5 degrees of a fracture zone);
+then whole builds (`agegrid build`, three cooling models, bathymetry, NetCDF and a COG per layer) in a fresh
+process each, with per-stage timings from the manifest and the peak memory of each stage and of the whole
+process: the wall time of the command (module imports included) and the layers-and-files time (the manifest's
+total: inputs read to every layer written as NetCDF and COG, with the tables; the report is timed apart), each
+build followed by griddata in a fresh process, timed after its imports (the fresh-process baseline); and the
+same builds run in this process after a warm-up, alternately with griddata, as the age stage is measured (the
+like-for-like ratio: no imports, numba start-up or first allocations on either side).
 
     python bench/run_bench.py [--sizes 0.1,0.025] [--repeats 5] [--builds 3] [--large] [--magnetic]
 
@@ -155,22 +155,67 @@ def griddata_inputs(path: Path, spec, basin, records) -> Path:
     return path
 
 
+#: `agegrid build --force` in a fresh process, the build file named first; prints as JSON its wall time (from
+#: before the command's start-up), the peak resident memory of each stage and of the whole run, and the exit
+#: code. Peaks are the kernel's high-water mark (VmHWM, which starts afresh at exec; ru_maxrss would carry the
+#: bench's own size into the child), restarted from the current size as each stage starts (writing 5 to
+#: /proc/self/clear_refs, Linux 4.0 and later) and read as it ends; the whole run's is the largest of those
+#: and of the marks read between stages. Where the mark cannot be restarted, each stage shows the run's peak
+#: so far.
+FRESH_BUILD = """
+import contextlib, json, sys, time
+from pathlib import Path
+
+def high_water_mb():
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+    return 0.0
+
+def restart_high_water():
+    try:
+        Path("/proc/self/clear_refs").write_text("5")
+    except OSError:
+        pass
+
+start = time.perf_counter()
+from agegrid.startup import ready_to_build  # what the command does first (then a no-op when it does it)
+ready_to_build()
+from agegrid import pipeline
+from agegrid.cli import main
+
+stage_peaks, run_peak, timed = {}, [0.0], pipeline.Stages.__call__
+
+@contextlib.contextmanager
+def measured(self, name):
+    run_peak[0] = max(run_peak[0], high_water_mb())
+    restart_high_water()
+    with timed(self, name):
+        yield
+    stage_peaks[name] = round(high_water_mb(), 1)
+    run_peak[0] = max(run_peak[0], stage_peaks[name])
+
+pipeline.Stages.__call__ = measured
+rc = main(["build", sys.argv[1], "--force", "--quiet"])
+wall = time.perf_counter() - start
+print(json.dumps({"wall_s": wall, "peak_mb": round(max(run_peak[0], high_water_mb()), 1),
+                  "stage_peaks_mb": stage_peaks, "rc": rc}))
+"""
+
+
 def whole_build(folder: Path, runs: int, griddata_npz: Path) -> dict:
-    """`agegrid build --force` in fresh processes, each followed by griddata in a fresh process (the
-    like-for-like baseline of the layers-and-files time); median wall time, stage timings, peak memory."""
-    # peak memory from the kernel's high-water mark (VmHWM), which starts afresh at exec; ru_maxrss would
-    # carry this benchmark's own size over into the child
-    code = ("import sys, time; from agegrid.cli import main; from agegrid.manifest import peak_memory_mb; "
-            "t = time.perf_counter(); rc = main(['build', sys.argv[1], '--force', '--quiet']); "
-            "print(time.perf_counter() - t, peak_memory_mb()['process'], rc)")
-    walls, peaks, stages, grids = [], [], [], []
+    """`agegrid build --force` in fresh processes (:data:`FRESH_BUILD`), each followed by griddata in a fresh
+    process (the like-for-like baseline of the layers-and-files time); median wall time, stage timings, peak
+    memory of the whole run and of each stage (the largest over the runs)."""
+    walls, peaks, stages, grids, stage_peaks = [], [], [], [], []
     for _ in range(runs):
-        out = subprocess.run([sys.executable, "-c", code, str(folder / "build.toml")], capture_output=True,
+        out = subprocess.run([sys.executable, "-c", FRESH_BUILD, str(folder / "build.toml")], capture_output=True,
                              text=True, check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
-        wall, peak, rc = out.stdout.split()
-        assert rc == "0", out.stderr
-        walls.append(float(wall))
-        peaks.append(float(peak))
+        run = json.loads(out.stdout.splitlines()[-1])
+        assert run["rc"] == 0, out.stderr
+        walls.append(run["wall_s"])
+        peaks.append(run["peak_mb"])
+        stage_peaks.append(run["stage_peaks_mb"])
         stages.append(json.loads((folder / "out" / "manifest.json").read_text())["timings_s"])
         grids.append(float(subprocess.run([sys.executable, "-c", FRESH_GRIDDATA, str(griddata_npz)],
                                           capture_output=True, text=True, check=True).stdout))
@@ -188,6 +233,7 @@ def whole_build(folder: Path, runs: int, griddata_npz: Path) -> dict:
             "fresh_griddata_s": round(fresh_griddata, 3), "fresh_griddata_runs_s": [round(t, 3) for t in grids],
             "layers_and_files_over_fresh_griddata": round(median_stages["total"] / fresh_griddata, 2),
             "peak_memory_mb": round(max(peaks), 1), "stages_s": median_stages,
+            "stage_peak_memory_mb": {k: max(p[k] for p in stage_peaks) for k in stage_peaks[0]},
             "noop_rerun_s": round(statistics.median(noop), 3), "noop_over_build": round(statistics.median(noop) / wall, 3)}
 
 
@@ -292,6 +338,7 @@ def main(argv=None) -> int:
                   f"(x{steady['over_griddata']:.1f} griddata; griddata alone {steady['griddata_alone_s']:.3f} s, "
                   f"x{steady['over_griddata_alone']:.1f})")
             print(f"{'':>16}build stages (median s): {build['stages_s']}")
+            print(f"{'':>16}build stages' peak memory (MB): {build['stage_peak_memory_mb']}")
             print(f"{'':>16}no-op rerun {build['noop_rerun_s']:.2f} s = {build['noop_over_build']:.2f} of a build")
         for small, big in zip(results, results[1:]):
             print(f"scaling: {big['cells'] / small['cells']:.1f}x the cells took "
