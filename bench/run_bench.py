@@ -167,10 +167,8 @@ import contextlib, json, sys, time
 from pathlib import Path
 
 def high_water_mb():
-    for line in Path("/proc/self/status").read_text().splitlines():
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1]) / 1024
-    return 0.0
+    from agegrid.manifest import peak_memory_mb
+    return peak_memory_mb()["process"]
 
 def restart_high_water():
     try:

@@ -36,8 +36,9 @@ def test_targets_hold_every_measure_to_its_limit():
 
 
 def test_fresh_build_reports_each_stages_peak_memory(tmp_path):
-    # The bench restarts the kernel's high-water mark (VmHWM) as each stage starts; the whole run's peak it
-    # reports must still be the process's, checked against the mark of the same build run without restarts.
+    # The bench restarts the kernel's high-water mark (VmHWM and clear_refs, Linux's proc(5)) as each stage
+    # starts; the whole run's peak it reports must still be the process's, checked against the mark of the
+    # same build run without restarts.
     import json
     import os
     import subprocess
